@@ -1,0 +1,49 @@
+"""Shared helpers for the benchmark scripts: data loading, the machine record, JSON output."""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+import platform
+import sys
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parent.parent
+SHARED_DATA = Path(os.environ.get("CASCADE_SHARED_DATA", ROOT.parent / "shared" / "data"))
+
+
+def machine() -> dict:
+    import scipy
+    import sklearn
+
+    return {
+        "cpu_count": os.cpu_count(),
+        "platform": platform.platform(),
+        "python": sys.version.split()[0],
+        "numpy": np.__version__,
+        "scipy": scipy.__version__,
+        "sklearn": sklearn.__version__,
+    }
+
+
+def load_labelled_csv(name: str) -> tuple[list[str], list[str]]:
+    """(urls, labels) of a shared data set: 'open-directory-hosts' or 'domain-categories'."""
+    files = {"open-directory-hosts": ("hosts.csv", "host"),
+             "domain-categories": ("domains.csv", "domain")}
+    filename, column = files[name]
+    path = SHARED_DATA / name / filename
+    if not path.exists():
+        raise SystemExit(f"{path} not found: set CASCADE_SHARED_DATA to the shared data folder")
+    with path.open(encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    return [r[column] for r in rows], [r["category"] for r in rows]
+
+
+def write_json(result: dict, path: str | None) -> None:
+    text = json.dumps(result, indent=2, sort_keys=False)
+    print(text)
+    if path:
+        Path(path).write_text(text + "\n", encoding="utf-8")

@@ -1,0 +1,335 @@
+"""The ``cascade`` command.
+
+Exit codes (also in ``cascade --help``):
+  0  done, every input line used
+  1  unexpected internal error (a bug: please report it with the traceback)
+  2  usage error (bad options)
+  3  done, but some input lines were bad and skipped (counted, samples in the summary)
+  4  a file could not be used (model directory, taxonomy, input file)
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+from cascade import __version__
+from cascade.errors import CascadeError, InvalidURL
+from cascade.io import InputRecord, Progress, ReadStats, open_writer, read_records
+from cascade.taxonomy import Taxonomy, demo_taxonomy, load_taxonomy
+from cascade.urls import UrlKey, normalize
+
+EXIT_OK, EXIT_BUG, EXIT_USAGE, EXIT_PARTIAL, EXIT_FILE = 0, 1, 2, 3, 4
+CHUNK = 4096
+
+EPILOG = """exit codes: 0 done; 1 internal error; 2 usage error; 3 done but some input lines were
+skipped (see the summary on stderr); 4 a model, taxonomy or input file could not be used.
+
+Categories are probabilities, not facts. Lookup logs are personal data: handle them under
+your organisation's policy and local law. The policy owner decides what to block."""
+
+
+# ---------------------------------------------------------------------------- helpers
+def _eprint(*args: Any) -> None:
+    print(*args, file=sys.stderr, flush=True)
+
+
+def _summary(stats: ReadStats, **extra: Any) -> dict[str, Any]:
+    out = {"input": stats.to_dict(), **extra}
+    return out
+
+
+def _finish(summary: dict[str, Any], stats: ReadStats, quiet: bool = False) -> int:
+    if not quiet:
+        _eprint(json.dumps(summary, ensure_ascii=False))
+    return EXIT_PARTIAL if stats.bad else EXIT_OK
+
+
+def _keyed_records(
+    records: Iterator[InputRecord], stats: ReadStats
+) -> Iterator[tuple[InputRecord, UrlKey]]:
+    """Normalize each record's URL; a bad URL is counted as a bad line and skipped."""
+    for rec in records:
+        try:
+            yield rec, normalize(rec.url)
+        except InvalidURL as exc:
+            stats.records -= 1
+            stats.add_bad(rec.line_no, rec.url, f"invalid URL: {exc.reason}")
+
+
+def _chunks(items: Iterator[Any], size: int = CHUNK) -> Iterator[list[Any]]:
+    chunk: list[Any] = []
+    for item in items:
+        chunk.append(item)
+        if len(chunk) >= size:
+            yield chunk
+            chunk = []
+    if chunk:
+        yield chunk
+
+
+def _input_records(args: argparse.Namespace, stats: ReadStats) -> Iterator[InputRecord]:
+    if getattr(args, "urls", None):
+        for i, u in enumerate(args.urls, 1):
+            stats.lines += 1
+            stats.records += 1
+            yield InputRecord(line_no=i, url=u)
+        return
+    source = args.input or "-"
+    yield from read_records(source, fmt=args.input_format, stats=stats)
+
+
+def _load_taxonomy(path: str | None) -> Taxonomy | None:
+    if path is None:
+        return None
+    if path == "demo":
+        return demo_taxonomy()
+    return load_taxonomy(path)
+
+
+def _load_labelled(args: argparse.Namespace, stats: ReadStats) -> tuple[
+        list[UrlKey], list[str], list[int], list[str | None]]:
+    keys, labels, counts, times = [], [], [], []
+    progress = Progress(label="reading", enabled=None if not args.quiet else False)
+    for rec, key in _keyed_records(read_records(args.input, fmt=args.input_format, stats=stats),
+                                   stats):
+        if not rec.label:
+            stats.records -= 1
+            stats.add_bad(rec.line_no, rec.url, "no label")
+            continue
+        keys.append(key)
+        labels.append(rec.label)
+        counts.append(rec.count)
+        times.append(rec.seen_at)
+        progress.update()
+    progress.close()
+    return keys, labels, counts, times
+
+
+# ---------------------------------------------------------------------------- commands
+def cmd_train(args: argparse.Namespace) -> int:
+    from cascade.evaluate import evaluate_proba, evaluation_split
+    from cascade.models.url_model import UrlModel
+
+    stats = ReadStats()
+    keys, labels, counts, times = _load_labelled(args, stats)
+    if len(keys) < 2:
+        raise CascadeError(f"{args.input}: fewer than two usable labelled rows")
+    taxonomy = _load_taxonomy(args.taxonomy)
+    params = dict(ngram_range=(args.ngram_min, args.ngram_max), n_features=2**args.hash_bits,
+                  use_tokens=not args.no_tokens, C=args.C, max_iter=args.max_iter,
+                  seed=args.seed)
+    metrics: dict[str, Any] = {}
+    if args.holdout > 0:
+        split = evaluation_split(keys, times, test_fraction=args.holdout, seed=args.seed,
+                                 group_by_domain=not args.no_group)
+        _eprint(f"train: holding out {len(split.test)} rows ({split.method}) to measure")
+        model = UrlModel(**params).fit([keys[i] for i in split.train],
+                                       [labels[i] for i in split.train], taxonomy=taxonomy)
+        test_keys = [keys[i] for i in split.test]
+        if test_keys:
+            metrics = evaluate_proba(model.predict_proba(test_keys),
+                                     [labels[i] for i in split.test], model.classes_,
+                                     counts=[counts[i] for i in split.test])
+            metrics["split"] = split.describe()
+            _eprint(f"train: held-out accuracy {metrics['accuracy']:.4f}, macro-F1 "
+                    f"{metrics['macro_f1']:.4f}, ECE {metrics['ece_15']:.4f}")
+    _eprint(f"train: fitting on {len(keys)} rows")
+    model = UrlModel(**params).fit(keys, labels, taxonomy=taxonomy)
+    model.save(args.model, metrics=metrics)
+    return _finish(_summary(stats, model=str(args.model), version=model.version,
+                            classes=len(model.classes_), temperature=model.temperature_,
+                            seconds=model.training_["seconds"], metrics_held_out=bool(metrics)),
+                   stats, args.quiet)
+
+
+def cmd_score(args: argparse.Namespace) -> int:
+    from cascade.models.url_model import UrlModel
+    from cascade.verdict import url_verdicts
+
+    model = UrlModel.load(args.model)
+    stats = ReadStats()
+    progress = Progress(label="scoring", enabled=None if not args.quiet else False)
+    written = 0
+    with open_writer(args.output, fmt=args.output_format) as out:
+        for chunk in _chunks(_keyed_records(_input_records(args, stats), stats)):
+            keys = [k for _, k in chunk]
+            proba = model.predict_proba(keys)
+            for verdict in url_verdicts([k.url for k in keys], proba, model.classes_,
+                                        model.version, fetch_below=args.fetch_below,
+                                        top_k=args.top):
+                row = verdict.to_dict()
+                if args.output_format == "csv":
+                    row["top"] = json.dumps(row["top"])
+                out.write(row)
+                written += 1
+            progress.update(len(chunk))
+    progress.close()
+    return _finish(_summary(stats, scored=written, model_version=model.version), stats,
+                   args.quiet)
+
+
+def cmd_explain(args: argparse.Namespace) -> int:
+    from cascade.models.url_model import UrlModel
+
+    model = UrlModel.load(args.model)
+    bad = 0
+    for url in args.urls:
+        try:
+            exp = model.explain(url, top=args.top, n_classes=args.classes)
+        except InvalidURL as exc:
+            bad += 1
+            _eprint(f"explain: {exc}")
+            continue
+        if args.json:
+            print(json.dumps(exp.to_dict(), ensure_ascii=False))
+            continue
+        print(exp.url)
+        for cls, rest in zip(exp.classes, exp.rest, strict=True):
+            print(f"  {cls.category:<14} p={cls.probability:.3f}  logit={cls.logit:+.3f}"
+                  f"  (bias {cls.bias:+.3f}, other features {rest:+.3f})")
+            for c in cls.contributions:
+                print(f"      {c.value:+.3f}  {c.kind:<5} {c.feature}")
+    return EXIT_PARTIAL if bad else EXIT_OK
+
+
+def cmd_evaluate(args: argparse.Namespace) -> int:
+    from cascade.evaluate import evaluate_proba
+    from cascade.models.url_model import UrlModel
+
+    model = UrlModel.load(args.model)
+    stats = ReadStats()
+    keys, labels, counts, _ = _load_labelled(args, stats)
+    unknown = sorted(set(labels) - set(model.classes_))
+    if unknown:
+        raise CascadeError(f"labels not among the model's categories: {unknown[:20]}")
+    if not keys:
+        raise CascadeError(f"{args.input}: no usable labelled rows")
+    metrics = evaluate_proba(model.predict_proba(keys), labels, model.classes_, counts=counts,
+                             precision_target=args.precision_target)
+    metrics["model_version"] = model.version
+    text = json.dumps(metrics, indent=2, ensure_ascii=False)
+    if args.output and args.output != "-":
+        Path(args.output).write_text(text + "\n", encoding="utf-8")
+    else:
+        print(text)
+    return _finish(_summary(stats, evaluated=len(keys)), stats, args.quiet)
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from cascade.demo import run_demo
+
+    result = run_demo(Path(args.out), seed=args.seed, n_sites=args.sites, quiet=args.quiet)
+    if not args.quiet:
+        _eprint(json.dumps(result["headline"], indent=2))
+        _eprint(f"demo: report folder {args.out}")
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------------------- parser
+def _add_input(p: argparse.ArgumentParser, required: bool = True) -> None:
+    p.add_argument("--input", "-i", required=required,
+                   help="URL file: plain text, CSV/TSV with a header (url, label, count, "
+                        "seen_at), or JSON Lines; .gz accepted; '-' for stdin")
+    p.add_argument("--input-format", choices=["txt", "csv", "tsv", "jsonl"],
+                   help="override the format guessed from the name or first line")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="cascade",
+        description="Put an acceptable-use category on URLs: a calibrated URL model first, "
+                    "a sandboxed page fetch only where it pays.",
+        epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--version", action="version", version=f"cascade {__version__}")
+    parser.add_argument("--quiet", "-q", action="store_true",
+                        help="no progress and no summary on stderr")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def command(name: str, help_text: str) -> argparse.ArgumentParser:
+        p = sub.add_parser(name, help=help_text, description=help_text, epilog=EPILOG,
+                           formatter_class=argparse.RawDescriptionHelpFormatter)
+        p.add_argument("--quiet", "-q", action="store_true", default=argparse.SUPPRESS,
+                       help="no progress and no summary on stderr")
+        return p
+
+    p = command("train", "Fit a URL model on a labelled file and save it to a directory.")
+    _add_input(p)
+    p.add_argument("--model", "-m", required=True, help="model directory to write")
+    p.add_argument("--taxonomy", "-t",
+                   help="category file (TOML), or 'demo'; default: the labels seen")
+    p.add_argument("--holdout", type=float, default=0.2,
+                   help="fraction held out (by time, then by domain) to measure the model "
+                        "before the final fit on all rows; 0 to skip (default 0.2)")
+    p.add_argument("--no-group", action="store_true",
+                   help="do not keep each registered domain on one side of the holdout")
+    p.add_argument("--ngram-min", type=int, default=1)
+    p.add_argument("--ngram-max", type=int, default=5)
+    p.add_argument("--hash-bits", type=int, default=20, help="log2 of the hashing space")
+    p.add_argument("--no-tokens", action="store_true", help="character n-grams only")
+    p.add_argument("--C", type=float, default=20.0, help="inverse L2 strength")
+    p.add_argument("--max-iter", type=int, default=150)
+    p.add_argument("--seed", type=int, default=0)
+    p.set_defaults(func=cmd_train)
+
+    p = command("score", "Score URLs with a URL model; writes one verdict per URL.")
+    p.add_argument("urls", nargs="*", help="URLs to score (instead of --input)")
+    _add_input(p, required=False)
+    p.add_argument("--model", "-m", required=True)
+    p.add_argument("--output", "-o", default="-", help="output file ('-' stdout; .gz ok)")
+    p.add_argument("--output-format", choices=["jsonl", "csv"], default=None,
+                   help="default: from the output name, else jsonl")
+    p.add_argument("--top", type=int, default=3, help="best categories kept per URL")
+    p.add_argument("--fetch-below", type=float, default=0.8,
+                   help="mark needs_fetch when confidence is under this (default 0.8)")
+    p.set_defaults(func=cmd_score)
+
+    p = command("explain", "Show which URL substrings drove a verdict (exact, per class).")
+    p.add_argument("urls", nargs="+")
+    p.add_argument("--model", "-m", required=True)
+    p.add_argument("--top", type=int, default=8, help="features shown per class")
+    p.add_argument("--classes", type=int, default=2, help="most probable classes shown")
+    p.add_argument("--json", action="store_true", help="JSON Lines instead of text")
+    p.set_defaults(func=cmd_explain)
+
+    p = command("evaluate", "Measure a model on a labelled file (metrics as JSON).")
+    _add_input(p)
+    p.add_argument("--model", "-m", required=True)
+    p.add_argument("--output", "-o", help="write the JSON here instead of stdout")
+    p.add_argument("--precision-target", type=float, default=0.9)
+    p.set_defaults(func=cmd_evaluate)
+
+    p = command("demo", "Run the whole job on the invented demo scenario into a folder.")
+    p.add_argument("--out", default="demo-output", help="report folder (default demo-output)")
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--sites", type=int, default=2000, help="invented sites (default 2000)")
+    p.set_defaults(func=cmd_demo)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not hasattr(args, "quiet"):
+        args.quiet = False
+    try:
+        return int(args.func(args))
+    except CascadeError as exc:
+        _eprint(f"cascade {args.command}: error: {exc}")
+        return EXIT_FILE
+    except ValueError as exc:
+        _eprint(f"cascade {args.command}: error: {exc}")
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        _eprint(f"cascade {args.command}: interrupted")
+        return 130
+    except BrokenPipeError:
+        return EXIT_OK
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,37 @@
+"""The exception tree: one root, a few typed branches, messages that say what to do.
+
+A fetch that fails is not an exception (it is a ``FetchResult`` with an outcome code);
+exceptions are for the caller's mistakes and for broken files.
+"""
+
+from __future__ import annotations
+
+
+class CascadeError(Exception):
+    """Root of every error cascade raises on purpose."""
+
+
+class InvalidURL(CascadeError, ValueError):
+    """The text is not a URL cascade can work with; ``reason`` says why."""
+
+    def __init__(self, text: str, reason: str) -> None:
+        self.text = text
+        self.reason = reason
+        shown = text if len(text) <= 120 else text[:117] + "..."
+        super().__init__(f"invalid URL {shown!r}: {reason}")
+
+
+class TaxonomyError(CascadeError, ValueError):
+    """The category file is malformed, or labels fall outside it."""
+
+
+class ModelFileError(CascadeError):
+    """A model directory is missing, tampered with, truncated, foreign or of another version."""
+
+
+class InputFormatError(CascadeError, ValueError):
+    """An input file cannot be read as any of the supported formats."""
+
+
+class NotFittedError(CascadeError, AttributeError):
+    """An estimator was used before ``fit``."""

@@ -1,0 +1,522 @@
+"""Evaluation metrics for a calibrated multi-class URL model, in plain numpy.
+
+Every metric takes class indices ``y_true`` of shape (n,) and, where it needs scores,
+calibrated probabilities ``proba`` of shape (n, k) whose rows sum to 1. An optional
+``sample_weight`` of shape (n,) (lookup counts) turns each metric into its "weighted by
+lookup volume" version. A row with weight 0 is treated exactly as if it were absent, so a
+weighted metric never depends on URLs nobody looked up.
+
+The top-label prediction of a row is ``argmax(proba)`` (the lowest class index wins a tie)
+and its confidence is ``max(proba)``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+__all__ = [
+    "ReliabilityTable",
+    "accuracy",
+    "coverage_at_precision",
+    "expected_calibration_error",
+    "f1_per_class",
+    "macro_f1",
+    "reliability_table",
+    "risk_coverage_curve",
+    "roc_auc_one_vs_rest",
+    "summarize",
+    "tpr_at_fpr",
+]
+
+#: How far a row of ``proba`` may sum from 1 (float32 softmax output over a few dozen
+#: classes is off by a few 1e-7; anything past this is a bug upstream, not rounding).
+ROW_SUM_TOL = 1e-5
+
+
+# --------------------------------------------------------------------------- validation
+
+
+def _check_labels(y: npt.ArrayLike, name: str, n_classes: int | None = None) -> np.ndarray:
+    """Return ``y`` as a 1-D int64 array of class indices, or raise ValueError."""
+    arr = np.asarray(y)
+    if arr.ndim != 1:
+        raise ValueError(f"{name} must be 1-D, got shape {arr.shape}")
+    if arr.shape[0] == 0:
+        raise ValueError(f"{name} is empty")
+    if arr.dtype == bool or not np.issubdtype(arr.dtype, np.integer):
+        raise ValueError(f"{name} must hold integer class indices, got dtype {arr.dtype}")
+    arr = arr.astype(np.int64, copy=False)
+    if arr.min() < 0:
+        raise ValueError(f"{name} holds a negative class index ({arr.min()})")
+    if n_classes is not None and arr.max() >= n_classes:
+        raise ValueError(
+            f"{name} holds class index {arr.max()}, outside 0..{n_classes - 1}"
+        )
+    return arr
+
+
+def _check_n_classes(n_classes: int) -> int:
+    if isinstance(n_classes, bool) or not isinstance(n_classes, int | np.integer):
+        raise ValueError(f"n_classes must be an int, got {n_classes!r}")
+    if n_classes < 1:
+        raise ValueError(f"n_classes must be >= 1, got {n_classes}")
+    return int(n_classes)
+
+
+def _check_proba(proba: npt.ArrayLike, n: int) -> np.ndarray:
+    """Return ``proba`` as an (n, k) float64 array of probability rows, or raise ValueError."""
+    arr = np.asarray(proba, dtype=np.float64)
+    if arr.ndim != 2:
+        raise ValueError(f"proba must be 2-D (n, k), got shape {arr.shape}")
+    if arr.shape[0] != n:
+        raise ValueError(f"proba has {arr.shape[0]} rows but y_true has {n}")
+    if arr.shape[1] < 1:
+        raise ValueError("proba has no columns")
+    if not np.all(np.isfinite(arr)):
+        raise ValueError("proba holds NaN or infinite values")
+    if arr.min() < -ROW_SUM_TOL or arr.max() > 1 + ROW_SUM_TOL:
+        raise ValueError("proba holds values outside [0, 1]")
+    sums = arr.sum(axis=1)
+    bad = np.flatnonzero(np.abs(sums - 1.0) > ROW_SUM_TOL)
+    if bad.size:
+        i = int(bad[0])
+        raise ValueError(
+            f"proba rows must sum to 1 (within {ROW_SUM_TOL}); {bad.size} do not, "
+            f"e.g. row {i} sums to {sums[i]!r}"
+        )
+    return arr
+
+
+def _check_weight(sample_weight: npt.ArrayLike | None, n: int) -> np.ndarray:
+    """Return the weights as float64 (all ones when None), or raise ValueError."""
+    if sample_weight is None:
+        return np.ones(n, dtype=np.float64)
+    w = np.asarray(sample_weight, dtype=np.float64)
+    if w.ndim != 1:
+        raise ValueError(f"sample_weight must be 1-D, got shape {w.shape}")
+    if w.shape[0] != n:
+        raise ValueError(f"sample_weight has {w.shape[0]} entries but y_true has {n}")
+    if not np.all(np.isfinite(w)):
+        raise ValueError("sample_weight holds NaN or infinite values")
+    if w.min() < 0:
+        raise ValueError(f"sample_weight holds a negative weight ({w.min()})")
+    if w.sum() <= 0:
+        raise ValueError("sample_weight sums to zero: nothing to evaluate")
+    return w
+
+
+def _keep_weighted(w: np.ndarray, *arrays: np.ndarray) -> tuple[np.ndarray, ...]:
+    """Drop rows of weight 0 so they behave exactly like absent rows."""
+    keep = w > 0
+    if keep.all():
+        return (w, *arrays)
+    return (w[keep], *(a[keep] for a in arrays))
+
+
+def _prepare_proba(
+    y_true: npt.ArrayLike, proba: npt.ArrayLike, sample_weight: npt.ArrayLike | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Validate (y_true, proba, sample_weight) and return (y, p, w) with zero-weight rows gone."""
+    y = _check_labels(y_true, "y_true")
+    p = _check_proba(proba, y.shape[0])
+    if y.max() >= p.shape[1]:
+        raise ValueError(
+            f"y_true holds class index {y.max()} but proba has only {p.shape[1]} columns"
+        )
+    w = _check_weight(sample_weight, y.shape[0])
+    w, y, p = _keep_weighted(w, y, p)
+    return y, p, w
+
+
+def _prepare_pred(
+    y_true: npt.ArrayLike,
+    y_pred: npt.ArrayLike,
+    n_classes: int | None,
+    sample_weight: npt.ArrayLike | None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Validate (y_true, y_pred, sample_weight) and return (y, yp, w) with zero-weight rows gone."""
+    y = _check_labels(y_true, "y_true", n_classes)
+    yp = _check_labels(y_pred, "y_pred", n_classes)
+    if yp.shape[0] != y.shape[0]:
+        raise ValueError(f"y_pred has {yp.shape[0]} entries but y_true has {y.shape[0]}")
+    w = _check_weight(sample_weight, y.shape[0])
+    w, y, yp = _keep_weighted(w, y, yp)
+    return y, yp, w
+
+
+def _top_label(y: np.ndarray, p: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Top-label confidence and whether the top label is right, per row."""
+    pred = p.argmax(axis=1)
+    return p.max(axis=1), pred == y
+
+
+# --------------------------------------------------------------- hard-label metrics
+
+
+def accuracy(
+    y_true: npt.ArrayLike, y_pred: npt.ArrayLike, sample_weight: npt.ArrayLike | None = None
+) -> float:
+    """Fraction (or weight fraction) of rows whose predicted class is the true one."""
+    y, yp, w = _prepare_pred(y_true, y_pred, None, sample_weight)
+    return float(np.sum(w * (y == yp)) / np.sum(w))
+
+
+def f1_per_class(
+    y_true: npt.ArrayLike,
+    y_pred: npt.ArrayLike,
+    n_classes: int,
+    sample_weight: npt.ArrayLike | None = None,
+) -> np.ndarray:
+    """Per-class F1 (k,); NaN for a class that appears in neither y_true nor y_pred.
+
+    A class that appears is scored 2TP / (2TP + FP + FN), which is 0 when it is never
+    predicted right, so the undefined case is kept apart from the merely bad one.
+    """
+    k = _check_n_classes(n_classes)
+    y, yp, w = _prepare_pred(y_true, y_pred, k, sample_weight)
+    confusion = np.bincount(y * k + yp, weights=w, minlength=k * k).reshape(k, k)
+    tp = np.diag(confusion)
+    fp = confusion.sum(axis=0) - tp
+    fn = confusion.sum(axis=1) - tp
+    denom = 2 * tp + fp + fn
+    present = np.zeros(k, dtype=bool)
+    present[y] = True
+    present[yp] = True
+    out = np.full(k, np.nan)
+    # A present class has positive weight somewhere in its row or column, so denom > 0.
+    out[present] = 2 * tp[present] / denom[present]
+    return out
+
+
+def macro_f1(
+    y_true: npt.ArrayLike,
+    y_pred: npt.ArrayLike,
+    n_classes: int,
+    sample_weight: npt.ArrayLike | None = None,
+) -> float:
+    """Unweighted mean of per-class F1 over the classes present in y_true or y_pred.
+
+    Classes absent from both are left out rather than scored 0, so the figure does not
+    move when the taxonomy grows a category the test set never touches.
+    """
+    return float(np.nanmean(f1_per_class(y_true, y_pred, n_classes, sample_weight)))
+
+
+# ------------------------------------------------------------------- ranking metrics
+
+
+def _score_groups(
+    positive: np.ndarray, score: np.ndarray, w: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Positive and negative weight per distinct score value, in ascending score order."""
+    _, inverse = np.unique(score, return_inverse=True)
+    n_groups = int(inverse.max()) + 1
+    wp = np.bincount(inverse, weights=w * positive, minlength=n_groups)
+    wn = np.bincount(inverse, weights=w * ~positive, minlength=n_groups)
+    return wp, wn
+
+
+def roc_auc_one_vs_rest(
+    y_true: npt.ArrayLike, proba: npt.ArrayLike, sample_weight: npt.ArrayLike | None = None
+) -> np.ndarray:
+    """Per-class ROC AUC (k,), class c against the rest scored by ``proba[:, c]``.
+
+    Computed as the (weighted) chance that a random positive outscores a random
+    negative, ties counting one half; this equals the trapezoid area under the ROC curve.
+    NaN for a class with no positives or no negatives.
+    """
+    y, p, w = _prepare_proba(y_true, proba, sample_weight)
+    k = p.shape[1]
+    out = np.full(k, np.nan)
+    for c in range(k):
+        wp, wn = _score_groups(y == c, p[:, c], w)
+        total_p, total_n = wp.sum(), wn.sum()
+        if total_p <= 0 or total_n <= 0:
+            continue
+        neg_below = np.cumsum(wn) - wn
+        out[c] = np.sum(wp * (neg_below + 0.5 * wn)) / (total_p * total_n)
+    return out
+
+
+def tpr_at_fpr(
+    y_true: npt.ArrayLike,
+    proba: npt.ArrayLike,
+    max_fpr: float,
+    sample_weight: npt.ArrayLike | None = None,
+) -> np.ndarray:
+    """Per-class best true-positive rate (k,) at a false-positive budget, one vs rest.
+
+    Definition: for class c, each threshold t flags the rows with ``proba[:, c] >= t``;
+    over all thresholds (the distinct scores, plus one above them all that flags nothing)
+    whose FPR is <= ``max_fpr``, return the highest TPR. This reads the ROC step
+    function with no interpolation between its points, so the answer is always reachable
+    by a real threshold. NaN for a class with no positives or no negatives.
+    """
+    max_fpr = float(max_fpr)
+    if not 0.0 <= max_fpr <= 1.0:
+        raise ValueError(f"max_fpr must lie in [0, 1], got {max_fpr}")
+    y, p, w = _prepare_proba(y_true, proba, sample_weight)
+    k = p.shape[1]
+    out = np.full(k, np.nan)
+    for c in range(k):
+        wp, wn = _score_groups(y == c, p[:, c], w)
+        # Descending thresholds: cumulative weight flagged at each distinct score.
+        tp = np.cumsum(wp[::-1])
+        fp = np.cumsum(wn[::-1])
+        total_p, total_n = tp[-1], fp[-1]
+        if total_p <= 0 or total_n <= 0:
+            continue
+        fpr = fp / total_n
+        tpr = tp / total_p
+        ok = fpr <= max_fpr
+        # The flag-nothing threshold (FPR 0, TPR 0) is always allowed.
+        out[c] = float(tpr[ok].max()) if ok.any() else 0.0
+    return out
+
+
+# --------------------------------------------------------------------- calibration
+
+
+@dataclass(frozen=True, eq=False)
+class ReliabilityTable:
+    """Per-bin top-label calibration data; NaN confidence/accuracy marks an empty bin."""
+
+    lo: np.ndarray  #: lower bin edge (exclusive, except the first bin also takes 0)
+    hi: np.ndarray  #: upper bin edge (inclusive)
+    count: np.ndarray  #: rows in the bin (rows of weight 0 are not counted)
+    weight: np.ndarray  #: total sample weight in the bin (equals count when unweighted)
+    mean_confidence: np.ndarray  #: weighted mean top-label confidence
+    accuracy: np.ndarray  #: weighted fraction of rows whose top label is right
+
+    def to_rows(self) -> list[dict[str, float | int | None]]:
+        """One JSON-ready dict per bin, NaN written as None."""
+        return [
+            {
+                "lo": float(self.lo[i]),
+                "hi": float(self.hi[i]),
+                "count": int(self.count[i]),
+                "weight": float(self.weight[i]),
+                "mean_confidence": _json_float(self.mean_confidence[i]),
+                "accuracy": _json_float(self.accuracy[i]),
+            }
+            for i in range(self.lo.shape[0])
+        ]
+
+
+def _bin_edges(n_bins: int) -> np.ndarray:
+    if isinstance(n_bins, bool) or not isinstance(n_bins, int | np.integer) or n_bins < 1:
+        raise ValueError(f"n_bins must be a positive int, got {n_bins!r}")
+    # i / n rather than linspace, so an edge is the double nearest i/n exactly.
+    return np.arange(int(n_bins) + 1) / int(n_bins)
+
+
+def _bin_indices(conf: np.ndarray, edges: np.ndarray) -> np.ndarray:
+    """Bin of each confidence for bins (lo, hi]; 0 joins the first bin, >1 the last."""
+    idx = np.searchsorted(edges, conf, side="left") - 1
+    return np.clip(idx, 0, edges.shape[0] - 2)
+
+
+def reliability_table(
+    y_true: npt.ArrayLike,
+    proba: npt.ArrayLike,
+    n_bins: int = 15,
+    sample_weight: npt.ArrayLike | None = None,
+) -> ReliabilityTable:
+    """Bin rows by top-label confidence into equal-width bins over [0, 1].
+
+    Bins are (0, 1/n], (1/n, 2/n], ..., ((n-1)/n, 1]; a confidence of exactly 0 goes in
+    the first bin. The table feeds both the ECE and reliability diagrams.
+    """
+    edges = _bin_edges(n_bins)
+    y, p, w = _prepare_proba(y_true, proba, sample_weight)
+    conf, correct = _top_label(y, p)
+    nb = edges.shape[0] - 1
+    idx = _bin_indices(conf, edges)
+    count = np.bincount(idx, minlength=nb)
+    weight = np.bincount(idx, weights=w, minlength=nb)
+    conf_sum = np.bincount(idx, weights=w * conf, minlength=nb)
+    ok_sum = np.bincount(idx, weights=w * correct, minlength=nb)
+    filled = weight > 0
+    mean_conf = np.full(nb, np.nan)
+    acc = np.full(nb, np.nan)
+    mean_conf[filled] = conf_sum[filled] / weight[filled]
+    acc[filled] = ok_sum[filled] / weight[filled]
+    return ReliabilityTable(
+        lo=edges[:-1].copy(),
+        hi=edges[1:].copy(),
+        count=count,
+        weight=weight,
+        mean_confidence=mean_conf,
+        accuracy=acc,
+    )
+
+
+def expected_calibration_error(
+    y_true: npt.ArrayLike,
+    proba: npt.ArrayLike,
+    n_bins: int = 15,
+    sample_weight: npt.ArrayLike | None = None,
+) -> float:
+    """Top-label ECE: bin-weight-averaged |accuracy - mean confidence| over equal-width bins.
+
+    Bins are those of :func:`reliability_table`; each bin counts in proportion to its
+    share of the rows (or of the sample weight).
+    """
+    table = reliability_table(y_true, proba, n_bins, sample_weight)
+    filled = table.weight > 0
+    gaps = np.abs(table.accuracy[filled] - table.mean_confidence[filled])
+    return float(np.sum(table.weight[filled] * gaps) / np.sum(table.weight))
+
+
+# ------------------------------------------------------------ selective prediction
+
+
+def _confidence_prefixes(
+    conf: np.ndarray, correct: np.ndarray, w: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For each distinct confidence t, high to low: t, weight with conf >= t, right weight.
+
+    Rows tied at one confidence always enter together: a threshold cannot split them.
+    """
+    order = np.argsort(-conf, kind="stable")
+    c = conf[order]
+    cum_w = np.cumsum(w[order])
+    cum_ok = np.cumsum(w[order] * correct[order])
+    ends = np.append(np.flatnonzero(c[1:] != c[:-1]), c.shape[0] - 1)
+    return c[ends], cum_w[ends], cum_ok[ends]
+
+
+def coverage_at_precision(
+    y_true: npt.ArrayLike,
+    proba: npt.ArrayLike,
+    target: float,
+    sample_weight: npt.ArrayLike | None = None,
+) -> tuple[float, float]:
+    """Largest share of rows the model can answer alone at a top-label accuracy >= target.
+
+    Rows are taken in decreasing top-label confidence, ties together. Among all such
+    prefixes (not only the first run of good ones) the largest whose accuracy reaches
+    ``target`` wins. Returns ``(coverage, threshold)``: answer rows with confidence >=
+    threshold. When no prefix qualifies, returns ``(0.0, inf)``: answer nothing.
+    """
+    target = float(target)
+    if not 0.0 <= target <= 1.0:
+        raise ValueError(f"target must lie in [0, 1], got {target}")
+    y, p, w = _prepare_proba(y_true, proba, sample_weight)
+    conf, correct = _top_label(y, p)
+    thresholds, cum_w, cum_ok = _confidence_prefixes(conf, correct, w)
+    good = np.flatnonzero(cum_ok / cum_w >= target)
+    if good.size == 0:
+        return 0.0, math.inf
+    j = int(good[-1])
+    return float(cum_w[j] / cum_w[-1]), float(thresholds[j])
+
+
+def risk_coverage_curve(
+    y_true: npt.ArrayLike, proba: npt.ArrayLike, sample_weight: npt.ArrayLike | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Coverage and risk (top-label error rate among answered rows) per confidence threshold.
+
+    One point per distinct confidence, from the most confident rows alone to all rows
+    (coverage 1), so coverage strictly increases along the arrays.
+    """
+    y, p, w = _prepare_proba(y_true, proba, sample_weight)
+    conf, correct = _top_label(y, p)
+    _, cum_w, cum_ok = _confidence_prefixes(conf, correct, w)
+    return cum_w / cum_w[-1], 1.0 - cum_ok / cum_w
+
+
+# ------------------------------------------------------------------------- summary
+
+
+def _json_float(x: float) -> float | None:
+    """A plain float, or None for NaN/inf (which JSON cannot carry)."""
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def _mean_defined(values: np.ndarray) -> float | None:
+    finite = values[np.isfinite(values)]
+    return float(finite.mean()) if finite.size else None
+
+
+def _headline(
+    y: np.ndarray,
+    p: np.ndarray,
+    w: np.ndarray | None,
+    precision_target: float,
+) -> tuple[dict[str, Any], np.ndarray]:
+    """The figures reported both per URL and per lookup; also returns the AUCs."""
+    k = p.shape[1]
+    pred = p.argmax(axis=1)
+    aucs = roc_auc_one_vs_rest(y, p, w)
+    coverage, threshold = coverage_at_precision(y, p, precision_target, w)
+    figures: dict[str, Any] = {
+        "accuracy": accuracy(y, pred, w),
+        "macro_f1": macro_f1(y, pred, k, w),
+        "ece_15": expected_calibration_error(y, p, 15, w),
+        "mean_roc_auc": _mean_defined(aucs),
+        "coverage_at_precision": {
+            "target": precision_target,
+            "coverage": coverage,
+            "threshold": _json_float(threshold),
+        },
+    }
+    return figures, aucs
+
+
+def summarize(
+    y_true: npt.ArrayLike,
+    proba: npt.ArrayLike,
+    class_names: list[str],
+    sample_weight: npt.ArrayLike | None = None,
+    precision_target: float = 0.9,
+) -> dict[str, Any]:
+    """All headline metrics in one JSON-ready dict (NaN and inf become None).
+
+    Top-level figures count every URL once; with ``sample_weight`` a ``"weighted"``
+    sub-dict repeats the headline figures weighted by lookup count.
+    """
+    y = _check_labels(y_true, "y_true")
+    p = _check_proba(proba, y.shape[0])
+    k = p.shape[1]
+    names = [str(name) for name in class_names]
+    if len(names) != k:
+        raise ValueError(f"{len(names)} class names for {k} proba columns")
+    if len(set(names)) != k:
+        raise ValueError("class_names holds duplicates")
+    if y.max() >= k:
+        raise ValueError(f"y_true holds class index {y.max()} but there are {k} classes")
+    precision_target = float(precision_target)
+    if not 0.0 <= precision_target <= 1.0:
+        raise ValueError(f"precision_target must lie in [0, 1], got {precision_target}")
+    w = None if sample_weight is None else _check_weight(sample_weight, y.shape[0])
+
+    figures, aucs = _headline(y, p, None, precision_target)
+    pred = p.argmax(axis=1)
+    f1s = f1_per_class(y, pred, k)
+    tpr3 = tpr_at_fpr(y, p, 1e-3)
+    tpr2 = tpr_at_fpr(y, p, 1e-2)
+    support = np.bincount(y, minlength=k)
+    per_class = {
+        name: {
+            "roc_auc": _json_float(aucs[c]),
+            "tpr_at_fpr_1e-3": _json_float(tpr3[c]),
+            "tpr_at_fpr_1e-2": _json_float(tpr2[c]),
+            "support": int(support[c]),
+            "f1": _json_float(f1s[c]),
+        }
+        for c, name in enumerate(names)
+    }
+    out: dict[str, Any] = {"n": int(y.shape[0]), "n_classes": k}
+    out.update(figures)
+    out["per_class"] = per_class
+    if w is not None:
+        weighted, _ = _headline(y, p, w, precision_target)
+        out["weighted"] = {"total_weight": float(w.sum()), **weighted}
+    return out

@@ -1,0 +1,144 @@
+"""Safe model files: ``model.json`` (metadata, digests) beside ``weights.npz`` (arrays only).
+
+No pickle anywhere: arrays are loaded with ``allow_pickle=False``, and every file is checked
+against a SHA-256 recorded in ``model.json`` before it is read. ``model.json`` carries a
+digest of its own content too, so an edited temperature or class list is refused as well.
+Each failed check raises ``ModelFileError`` naming the check.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import os
+import shutil
+import tempfile
+import zipfile
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from cascade.errors import ModelFileError
+
+FORMAT_NAME = "cascade-model"
+FORMAT_VERSION = 1
+META_FILE = "model.json"
+WEIGHTS_FILE = "weights.npz"
+
+
+def _sha256_file(path: Path) -> str:
+    digest = hashlib.sha256()
+    with path.open("rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _content_digest(meta: dict[str, Any]) -> str:
+    body = {k: v for k, v in meta.items() if k != "content_sha256"}
+    text = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
+    return hashlib.sha256(text.encode("ascii")).hexdigest()
+
+
+def save_model_dir(
+    path: str | Path, kind: str, meta: dict[str, Any], arrays: dict[str, np.ndarray]
+) -> Path:
+    """Write a model directory atomically: a crash never leaves a half-written model."""
+    target = Path(path)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.", dir=target.parent))
+    try:
+        weights = staging / WEIGHTS_FILE
+        np.savez_compressed(weights, **arrays)
+        full = {
+            "format": FORMAT_NAME,
+            "format_version": FORMAT_VERSION,
+            "kind": kind,
+            **meta,
+            "files": {
+                WEIGHTS_FILE: {"sha256": _sha256_file(weights), "bytes": weights.stat().st_size}
+            },
+        }
+        full["content_sha256"] = _content_digest(full)
+        (staging / META_FILE).write_text(json.dumps(full, indent=2, sort_keys=False) + "\n",
+                                         encoding="utf-8")
+        if target.exists():
+            if not (target / META_FILE).exists() and any(target.iterdir()):
+                raise ModelFileError(
+                    f"{target} exists and is not a model directory; refusing to overwrite it"
+                )
+            old = target.with_name(f".{target.name}.old")
+            shutil.rmtree(old, ignore_errors=True)
+            os.replace(target, old)
+            os.replace(staging, target)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(staging, target)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+    return target
+
+
+def load_model_dir(path: str | Path, kind: str) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """Read and verify a model directory; return ``(meta, arrays)``."""
+    root = Path(path)
+    meta_path = root / META_FILE
+    if not root.is_dir():
+        raise ModelFileError(f"{root} is not a model directory (no such directory)")
+    if not meta_path.is_file():
+        raise ModelFileError(f"{root} has no {META_FILE}: not a cascade model directory")
+    try:
+        meta = json.loads(meta_path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise ModelFileError(f"{meta_path} is not valid JSON (truncated or foreign): {exc}") \
+            from None
+    if not isinstance(meta, dict) or meta.get("format") != FORMAT_NAME:
+        raise ModelFileError(f"{meta_path} is not a cascade model file (foreign format)")
+    version = meta.get("format_version")
+    if version != FORMAT_VERSION:
+        raise ModelFileError(
+            f"{meta_path} has format version {version!r}; this cascade reads version "
+            f"{FORMAT_VERSION}. Retrain the model with this version, or use the cascade "
+            "release that wrote it."
+        )
+    if meta.get("content_sha256") != _content_digest(meta):
+        raise ModelFileError(
+            f"{meta_path} content digest does not match: the metadata was edited or corrupted"
+        )
+    if meta.get("kind") != kind:
+        raise ModelFileError(f"{root} holds a {meta.get('kind')!r} model, not a {kind!r} model")
+    entry = meta.get("files", {}).get(WEIGHTS_FILE)
+    weights_path = root / WEIGHTS_FILE
+    if not isinstance(entry, dict) or "sha256" not in entry:
+        raise ModelFileError(f"{meta_path} records no digest for {WEIGHTS_FILE}")
+    if not weights_path.is_file():
+        raise ModelFileError(f"{root} has no {WEIGHTS_FILE}")
+    size = weights_path.stat().st_size
+    if size != entry.get("bytes"):
+        raise ModelFileError(
+            f"{WEIGHTS_FILE} is {size} bytes but model.json records {entry.get('bytes')}: "
+            "truncated or replaced"
+        )
+    blob = weights_path.read_bytes()
+    if hashlib.sha256(blob).hexdigest() != entry["sha256"]:
+        raise ModelFileError(f"{WEIGHTS_FILE} digest does not match model.json: tampered or "
+                             "corrupted")
+    try:
+        with np.load(io.BytesIO(blob), allow_pickle=False) as npz:
+            arrays = {name: npz[name] for name in npz.files}
+    except (ValueError, OSError, zipfile.BadZipFile, EOFError) as exc:
+        raise ModelFileError(f"{WEIGHTS_FILE} cannot be read as numpy arrays: {exc}") from None
+    return meta, arrays
+
+
+def data_digest(items: list[str], labels: list[str]) -> str:
+    """SHA-256 of the training rows, recorded so a model can be traced to its data."""
+    digest = hashlib.sha256()
+    for item, label in zip(items, labels, strict=True):
+        digest.update(item.encode("utf-8", "surrogatepass"))
+        digest.update(b"\t")
+        digest.update(str(label).encode("utf-8"))
+        digest.update(b"\n")
+    return digest.hexdigest()

@@ -1,0 +1,111 @@
+"""The ``cascade`` command end to end on small invented data, in-process and as a real
+process (exit codes, bad lines counted, never a traceback for a user's mistake)."""
+
+from __future__ import annotations
+
+import gzip
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from cascade.cli import EXIT_FILE, EXIT_OK, EXIT_PARTIAL, EXIT_USAGE, main
+from cascade.scenario import generate_telemetry, write_telemetry_csv
+
+
+@pytest.fixture(scope="module")
+def workdir(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    root = tmp_path_factory.mktemp("cli")
+    records = generate_telemetry(seed=2, n_sites=250)
+    write_telemetry_csv(records, root / "labelled.csv")
+    code = main(["--quiet", "train", "--input", str(root / "labelled.csv"), "--model",
+                 str(root / "model"), "--taxonomy", "demo", "--max-iter", "40",
+                 "--hash-bits", "16"])
+    assert code == EXIT_OK
+    return root
+
+
+def test_train_writes_a_model_with_held_out_metrics(workdir: Path) -> None:
+    meta = json.loads((workdir / "model" / "model.json").read_text())
+    assert meta["kind"] == "url-model"
+    assert 0 <= meta["metrics"]["accuracy"] <= 1
+    assert meta["metrics"]["split"]["method"] == "time+domain"
+
+
+def test_score_counts_bad_lines_and_goes_on(workdir: Path, capsys) -> None:
+    src = workdir / "mixed.txt.gz"
+    with gzip.open(src, "wt", encoding="utf-8") as fh:
+        fh.write("https://www.spinjackpot-odds.example/casino\n")
+        fh.write("ftp://not-web.example/\n")
+        fh.write("http://exa mple.test/\n")
+        fh.write("news.harborgazette.test/articles\n")
+    out = workdir / "verdicts.jsonl"
+    code = main(["score", "--model", str(workdir / "model"), "--input", str(src),
+                 "--output", str(out)])
+    assert code == EXIT_PARTIAL
+    rows = [json.loads(line) for line in out.read_text().splitlines()]
+    assert [r["url"] for r in rows] == ["https://www.spinjackpot-odds.example/casino",
+                                        "http://news.harborgazette.test/articles"]
+    assert all(r["stage"] == "url" and 0 <= r["confidence"] <= 1 for r in rows)
+    summary = json.loads(capsys.readouterr().err.strip().splitlines()[-1])
+    assert summary["input"]["bad"] == 2
+    assert summary["input"]["samples"][0]["line_no"] == 2
+    assert "scheme" in summary["input"]["samples"][0]["reason"]
+
+
+def test_score_urls_on_the_command_line_as_csv(workdir: Path, capsys) -> None:
+    code = main(["--quiet", "score", "--model", str(workdir / "model"),
+                 "--output-format", "csv", "lnk.test/Ab3dE", "https://m.blue-album.example/"])
+    assert code == EXIT_OK
+    lines = capsys.readouterr().out.strip().splitlines()
+    assert lines[0].startswith("url,category,confidence")
+    assert len(lines) == 3
+
+
+def test_explain_prints_contributions(workdir: Path, capsys) -> None:
+    code = main(["explain", "--model", str(workdir / "model"), "--json",
+                 "https://www.spinjackpot-odds.example/casino/live"])
+    assert code == EXIT_OK
+    exp = json.loads(capsys.readouterr().out)
+    assert exp["classes"][0]["top"]
+
+
+def test_evaluate_writes_metrics(workdir: Path, capsys) -> None:
+    out = workdir / "metrics.json"
+    code = main(["--quiet", "evaluate", "--model", str(workdir / "model"), "--input",
+                 str(workdir / "labelled.csv"), "--output", str(out)])
+    assert code == EXIT_OK
+    metrics = json.loads(out.read_text())
+    assert {"accuracy", "macro_f1", "ece_15", "per_class", "weighted"} <= set(metrics)
+
+
+def test_missing_model_is_a_file_error(tmp_path: Path, capsys) -> None:
+    code = main(["score", "--model", str(tmp_path / "none"), "example.com"])
+    assert code == EXIT_FILE
+    assert "not a model directory" in capsys.readouterr().err
+
+
+def test_bad_option_is_a_usage_error() -> None:
+    with pytest.raises(SystemExit) as info:
+        main(["score", "--no-such-option"])
+    assert info.value.code == EXIT_USAGE
+
+
+@pytest.mark.parametrize("command", ["train", "score", "explain", "evaluate", "demo"])
+def test_every_command_has_help(command: str, capsys) -> None:
+    with pytest.raises(SystemExit) as info:
+        main([command, "--help"])
+    assert info.value.code == 0
+    assert "exit codes" in capsys.readouterr().out
+
+
+def test_real_process_reads_stdin_and_reports_exit_code(workdir: Path) -> None:
+    proc = subprocess.run(
+        [sys.executable, "-m", "cascade.cli", "score", "--model", str(workdir / "model")],
+        input="example.com\n\x00bad\x01 url\n", capture_output=True, text=True, timeout=120,
+    )
+    assert proc.returncode == EXIT_PARTIAL, proc.stderr
+    assert len(proc.stdout.strip().splitlines()) == 1
+    assert "Traceback" not in proc.stderr
