@@ -17,7 +17,8 @@ import numpy as np
 
 from cascade.errors import TaxonomyError
 
-_NAME = re.compile(r"^[a-z0-9][a-z0-9_-]{0,63}$")
+# A name is what reports and verdicts print: 1-64 printable characters, no outer spaces.
+_NAME = re.compile(r"^[^\s\x00-\x1f\x7f](?:[^\x00-\x1f\x7f]{0,62}[^\s\x00-\x1f\x7f])?$")
 RISK_LEVELS = ("low", "high")
 
 
@@ -46,8 +47,8 @@ class Taxonomy:
         for cat in self.categories:
             if not _NAME.match(cat.name):
                 raise TaxonomyError(
-                    f"category name {cat.name!r} must be 1-64 characters of a-z, 0-9, '-' or '_',"
-                    " starting with a letter or digit"
+                    f"category name {cat.name!r} must be 1-64 printable characters with no "
+                    "leading or trailing space"
                 )
             if cat.name in seen:
                 raise TaxonomyError(f"category {cat.name!r} is listed twice")

@@ -104,17 +104,8 @@ class UrlKey:
         ``suffix`` (the public suffix), ``path`` (a path word), ``query`` (a query key word).
         Runs of digits become ``<n>`` plus their length, so ids do not flood the vocabulary.
         """
-        out: list[tuple[str, str]] = []
-        if self.registered_domain:
-            out.append(("domain", self.registered_domain))
-        if self.public_suffix:
-            out.append(("suffix", self.public_suffix))
-        host = self.host_unicode.lower()
-        if self.public_suffix and not self.is_ip and host.endswith(self.public_suffix):
-            host = host[: -len(self.public_suffix)]
-        for word in _TOKEN_SPLIT.split(host):
-            if word:
-                out.append(("host", _word(word)))
+        out = list(_host_tokens(self.host_unicode, self.public_suffix, self.registered_domain,
+                                self.is_ip))
         path = _unquote_for_tokens(self.path.lower())
         for word in _TOKEN_SPLIT.split(path):
             if word:
@@ -129,6 +120,24 @@ class UrlKey:
 
     def __str__(self) -> str:
         return self.url
+
+
+@lru_cache(maxsize=65_536)
+def _host_tokens(
+    host_unicode: str, suffix: str | None, domain: str | None, is_ip: bool
+) -> tuple[tuple[str, str], ...]:
+    out: list[tuple[str, str]] = []
+    if domain:
+        out.append(("domain", domain))
+    if suffix:
+        out.append(("suffix", suffix))
+    host = host_unicode.lower()
+    if suffix and not is_ip and host.endswith(suffix):
+        host = host[: -len(suffix)]
+    for word in _TOKEN_SPLIT.split(host):
+        if word:
+            out.append(("host", _word(word)))
+    return tuple(out)
 
 
 def _word(word: str) -> str:
@@ -283,6 +292,9 @@ def _normalize_host(raw: str, host: str) -> tuple[str, str, bool]:
             unicode_host = idna.decode(ascii_host)
         except idna.IDNAError:
             unicode_host = host
+        ipv4 = parse_ipv4_host(ascii_host)  # WHATWG: "１２７.０.０.１" maps to digits
+        if ipv4 is not None:
+            return str(ipv4), str(ipv4), True
     if len(ascii_host) > 253:
         raise InvalidURL(raw, "host is longer than 253 characters")
     for label in ascii_host.split("."):

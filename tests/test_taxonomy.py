@@ -34,7 +34,7 @@ def test_unknown_labels_are_listed() -> None:
     [
         ("[taxonomy]\nname='x'\n", "no \\[\\[category\\]\\]"),
         ("[[category]]\nname='a'\n[[category]]\nname='a'\n", "listed twice"),
-        ("[[category]]\nname='Bad Name'\n", "must be 1-64 characters"),
+        ("[[category]]\nname=' padded'\n", "must be 1-64 printable"),
         ("[[category]]\nname='a'\ncost=-1\n", "cost must be a positive"),
         ("[[category]]\nname='a'\nrisk='medium'\n", "risk must be one of"),
         ("[[category]]\nname='a'\ncolour='red'\n", "unknown keys"),

@@ -7,6 +7,7 @@ its confidence to decide which URLs are worth a page fetch.
 
 from __future__ import annotations
 
+import math
 import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
@@ -19,7 +20,12 @@ import scipy.sparse as sp
 from cascade import __version__
 from cascade.errors import InvalidURL, ModelFileError, NotFittedError, TaxonomyError
 from cascade.models.calibration import fit_temperature, softmax
-from cascade.models.hashing import char_ngram_hashes, columns, token_hashes
+from cascade.models.hashing import (
+    char_ngram_hashes,
+    char_ngram_hashes_one,
+    columns,
+    token_hashes,
+)
 from cascade.models.model_files import data_digest, load_model_dir, save_model_dir
 from cascade.models.softmax import fit_softmax
 from cascade.taxonomy import Taxonomy
@@ -150,20 +156,19 @@ class UrlModel:
         return rows, columns(hashes, self.n_features)
 
     def transform(self, urls: Iterable[str | UrlKey]) -> sp.csr_matrix:
-        """Feature matrix: log(1 + count) per hashed column, each row scaled to unit L2 norm."""
+        """Feature matrix: each hashed occurrence adds ``1 / sqrt(occurrences in the row)``,
+        so a column holds its count scaled by the row's size (a long URL does not outvote a
+        short one), and a score is one gather-and-sum per URL on the request path."""
         self._check_params()
         keys = as_keys(urls)
         rows, cols = self._hashes(keys)
-        X = sp.csr_matrix(
-            (np.ones(rows.shape[0], dtype=np.float32), (rows, cols)),
-            shape=(len(keys), self.n_features),
-        )
-        X.sum_duplicates()
-        np.log1p(X.data, out=X.data)
-        norms = np.sqrt(np.asarray(X.multiply(X).sum(axis=1)).ravel())
-        norms[norms == 0] = 1.0
-        X = sp.diags((1.0 / norms).astype(np.float32)) @ X
-        return X.tocsr()
+        n = len(keys)
+        per_row = np.bincount(rows, minlength=n)
+        scale = 1.0 / np.sqrt(np.maximum(per_row, 1)).astype(np.float32)
+        order = np.argsort(rows, kind="stable")
+        indptr = np.concatenate(([0], np.cumsum(per_row)))
+        return sp.csr_matrix((scale[rows[order]], cols[order], indptr),
+                             shape=(n, self.n_features))
 
     # ------------------------------------------------------------------ fitting
     def fit(
@@ -279,13 +284,18 @@ class UrlModel:
         matrix is built). Same numbers as ``predict_proba([url])[0]``."""
         self._check_fitted()
         key = url if isinstance(url, UrlKey) else normalize(url)
-        _, cols = self._hashes([key])
-        cols, counts = np.unique(cols, return_counts=True)
-        values = np.log1p(counts.astype(np.float32))
-        values /= np.float32(np.sqrt(float(values @ values)) or 1.0)
-        logits = (values @ self.weights_[cols] + self.intercept_) / self.temperature_
-        z = np.exp(logits - logits.max())
-        return z / z.sum()
+        hashes = char_ngram_hashes_one(key.feature_text, tuple(self.ngram_range), self.seed)
+        if self.use_tokens:
+            hashes = np.concatenate((hashes, token_hashes([key.tokens()], self.seed)[1]))
+        cols = columns(hashes, self.n_features)
+        t = self.temperature_
+        logits = self.weights_.take(cols, axis=0).sum(axis=0, dtype=np.float64)
+        logits *= 1.0 / (t * math.sqrt(max(1, cols.shape[0])))
+        logits += self.intercept_ / t
+        logits -= logits.max()
+        z = np.exp(logits, out=logits)
+        z /= z.sum()
+        return z
 
     # ------------------------------------------------------------------ explanation
     def explain(self, url: str | UrlKey, top: int = 8, classes: Sequence[str] | None = None,
@@ -297,8 +307,7 @@ class UrlModel:
         names = self._feature_names(key)
         _, cols = self._hashes([key])
         uniq, inverse, counts = np.unique(cols, return_inverse=True, return_counts=True)
-        values = np.log1p(counts.astype(np.float64))
-        values /= np.sqrt(values @ values) or 1.0
+        values = counts.astype(np.float64) / np.sqrt(max(1, cols.shape[0]))
         W = self.weights_[uniq].astype(np.float64)
         per_feature = values[:, None] * W / self.temperature_  # (n_uniq, k)
         bias = self.intercept_ / self.temperature_

@@ -1,0 +1,222 @@
+"""URL model against its peers, in one run on one machine: accuracy and speed.
+
+Peers: fastText's supervised classifier (character subwords, minn/maxn) trained on the same
+split, and a plain scikit-learn pipeline (HashingVectorizer over character n-grams + an
+SGD-trained linear model). Data: the shared open-directory hosts and domain categories
+(fixed 80/20 split by registered domain, seed 0) and the invented demo scenario (split by
+time, new domains only on the test side).
+
+Figures: accuracy and macro-F1 on the test side; batch throughput (URLs/s, one call over
+the whole test side, best of 3); single-URL latency p50/p99 (one call per URL); our model
+file's size. Our figures include URL normalization (the peers get the raw string, as they
+would in use).
+
+    python benchmarks/url_model.py --json url_model.json
+"""
+
+from __future__ import annotations
+
+import argparse
+import re
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _common import load_labelled_csv, machine, write_json  # noqa: E402
+
+from cascade.evaluate import evaluation_split  # noqa: E402
+from cascade.metrics import accuracy, macro_f1  # noqa: E402
+from cascade.models.url_model import UrlModel  # noqa: E402
+from cascade.scenario import generate_telemetry  # noqa: E402
+from cascade.taxonomy import demo_taxonomy  # noqa: E402
+from cascade.urls import normalize  # noqa: E402
+
+_SPLIT_WORDS = re.compile(r"[^0-9A-Za-z\u00c0-\uffff]+")
+
+
+def _data(name: str):
+    if name == "demo-scenario":
+        records = generate_telemetry(seed=0)
+        raw = [r.url for r in records]
+        labels = [r.label for r in records]
+        times = [r.seen_at for r in records]
+    else:
+        raw, labels = load_labelled_csv(name)
+        times = None
+    keep = []
+    keys = []
+    for i, u in enumerate(raw):
+        try:
+            keys.append(normalize(u))
+            keep.append(i)
+        except ValueError:
+            pass
+    raw = [raw[i] for i in keep]
+    labels = [labels[i] for i in keep]
+    times = None if times is None else [times[i] for i in keep]
+    split = evaluation_split(keys, times, test_fraction=0.2, seed=0)
+    return raw, labels, split
+
+
+def _best_of(fn, repeats: int = 3) -> float:
+    best = float("inf")
+    for _ in range(repeats):
+        started = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - started)
+    return best
+
+
+def _latency(fn, items: list[str], n: int = 2000) -> dict:
+    items = (items * (n // max(1, len(items)) + 1))[:n]
+    for x in items[:100]:
+        fn(x)
+    samples = np.empty(len(items))
+    for i, x in enumerate(items):
+        started = time.perf_counter_ns()
+        fn(x)
+        samples[i] = (time.perf_counter_ns() - started) / 1000.0
+    return {"p50_us": round(float(np.percentile(samples, 50)), 1),
+            "p99_us": round(float(np.percentile(samples, 99)), 1),
+            "single_per_s": round(float(1e6 / samples.mean()), 0)}
+
+
+def _scores(y_true: list[str], y_pred: list[str], classes: list[str]) -> dict:
+    index = {c: i for i, c in enumerate(classes)}
+    yt = np.array([index[c] for c in y_true])
+    yp = np.array([index.get(c, 0) for c in y_pred])
+    return {"accuracy": round(accuracy(yt, yp), 4),
+            "macro_f1": round(macro_f1(yt, yp, len(classes)), 4)}
+
+
+def run_ours(train, ytrain, test, ytest, taxonomy, params) -> dict:
+    started = time.perf_counter()
+    model = UrlModel(**params).fit(train, ytrain, taxonomy=taxonomy)
+    fit_s = time.perf_counter() - started
+    out = {"fit_seconds": round(fit_s, 1), "temperature": round(model.temperature_, 4)}
+    out.update(_scores(ytest, model.predict(test), model.classes_))
+    secs = _best_of(lambda: model.predict_proba(test))
+    out["batch_per_s"] = round(len(test) / secs, 0)
+    out.update(_latency(model.predict_proba_one, test))
+    with tempfile.TemporaryDirectory() as tmp:
+        path = model.save(Path(tmp) / "m")
+        out["model_file_bytes"] = sum(p.stat().st_size for p in path.iterdir())
+    return out
+
+
+def _ft_text(url: str) -> str:
+    return " ".join(w for w in _SPLIT_WORDS.split(url.lower()) if w)
+
+
+def run_fasttext(train, ytrain, test, ytest, classes, seed: int) -> dict:
+    try:
+        import fasttext
+    except ImportError:
+        return {"skipped": "fasttext not installed (pip install -e '.[bench]')"}
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "train.txt"
+        with path.open("w", encoding="utf-8") as fh:
+            for u, y in zip(train, ytrain, strict=True):
+                fh.write(f"__label__{y} {_ft_text(u)}\n")
+        started = time.perf_counter()
+        model = fasttext.train_supervised(
+            input=str(path), minn=2, maxn=5, dim=100, epoch=25, lr=0.5, wordNgrams=1,
+            thread=1, seed=seed, verbose=0)
+        fit_s = time.perf_counter() - started
+    texts = [_ft_text(u) for u in test]
+    labels, _ = model.predict(texts, k=1)
+    pred = [lab[0].replace("__label__", "") for lab in labels]
+    out = {"fit_seconds": round(fit_s, 1),
+           "settings": "minn=2 maxn=5 dim=100 epoch=25 lr=0.5 wordNgrams=1 thread=1"}
+    out.update(_scores(ytest, pred, classes))
+    # the peer's own tokenization (lowercase, split on punctuation) is part of its cost
+    secs = _best_of(lambda: model.predict([_ft_text(u) for u in test], k=1))
+    out["batch_per_s"] = round(len(test) / secs, 0)
+    out.update(_latency(lambda u: model.predict(_ft_text(u), k=1), test))
+    return out
+
+
+def run_sklearn(train, ytrain, test, ytest, classes, seed: int) -> dict:
+    from sklearn.feature_extraction.text import HashingVectorizer
+    from sklearn.linear_model import SGDClassifier
+    from sklearn.pipeline import make_pipeline
+
+    pipe = make_pipeline(
+        HashingVectorizer(analyzer="char_wb", ngram_range=(1, 5), n_features=2**20),
+        SGDClassifier(loss="log_loss", alpha=1e-5, max_iter=30, tol=None, random_state=seed),
+    )
+    started = time.perf_counter()
+    pipe.fit(train, ytrain)
+    fit_s = time.perf_counter() - started
+    out = {"fit_seconds": round(fit_s, 1),
+           "settings": "HashingVectorizer(char_wb, 1-5, 2**20) + SGDClassifier(log_loss, "
+                       "alpha=1e-5, 30 epochs)"}
+    out.update(_scores(ytest, list(pipe.predict(test)), classes))
+    secs = _best_of(lambda: pipe.predict_proba(test))
+    out["batch_per_s"] = round(len(test) / secs, 0)
+    out.update(_latency(lambda u: pipe.predict_proba([u]), test, n=300))
+    return out
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--json", help="write the result here too")
+    parser.add_argument("--datasets",
+                        default="open-directory-hosts,domain-categories,demo-scenario")
+    parser.add_argument("--seed", type=int, default=0)
+    args = parser.parse_args()
+    params = dict(ngram_range=(1, 5), n_features=2**20, C=20.0, seed=args.seed)
+    result = {"benchmark": "url-model", "machine": machine(),
+              "our_params": {k: (list(v) if isinstance(v, tuple) else v)
+                             for k, v in params.items()},
+              "datasets": {}}
+    for name in args.datasets.split(","):
+        print(f"[{name}] loading", file=sys.stderr, flush=True)
+        raw, labels, split = _data(name)
+        train = [raw[i] for i in split.train]
+        ytrain = [labels[i] for i in split.train]
+        test = [raw[i] for i in split.test]
+        ytest = [labels[i] for i in split.test]
+        taxonomy = demo_taxonomy() if name == "demo-scenario" else None
+        classes = sorted(set(labels)) if taxonomy is None else list(taxonomy.names)
+        entry = {"split": split.describe(), "classes": len(classes)}
+        print(f"[{name}] ours", file=sys.stderr, flush=True)
+        entry["ours"] = run_ours(train, ytrain, test, ytest, taxonomy, params)
+        print(f"[{name}] fastText", file=sys.stderr, flush=True)
+        entry["fasttext"] = run_fasttext(train, ytrain, test, ytest, classes, args.seed)
+        print(f"[{name}] scikit-learn", file=sys.stderr, flush=True)
+        entry["sklearn_hashing_sgd"] = run_sklearn(train, ytrain, test, ytest, classes,
+                                                   args.seed)
+        ours, ft = entry["ours"], entry["fasttext"]
+        if "skipped" not in ft:
+            entry["ratios_ours_over_fasttext"] = {
+                "macro_f1": round(ours["macro_f1"] / ft["macro_f1"], 3),
+                "accuracy": round(ours["accuracy"] / ft["accuracy"], 3),
+                "batch_throughput": round(ours["batch_per_s"] / ft["batch_per_s"], 3),
+                "single_p50_latency": round(ours["p50_us"] / ft["p50_us"], 3),
+            }
+        sk = entry["sklearn_hashing_sgd"]
+        entry["ratios_ours_over_sklearn"] = {
+            "macro_f1": round(ours["macro_f1"] / sk["macro_f1"], 3),
+            "batch_throughput": round(ours["batch_per_s"] / sk["batch_per_s"], 3),
+            "single_p50_latency": round(ours["p50_us"] / sk["p50_us"], 3),
+        }
+        entry["targets"] = {
+            "macro_f1_at_least_fasttext": None if "skipped" in ft
+            else ours["macro_f1"] >= ft["macro_f1"],
+            "batch_at_least_fasttext": None if "skipped" in ft
+            else ours["batch_per_s"] >= ft["batch_per_s"],
+            "single_p50_at_most_50us": ours["p50_us"] <= 50.0,
+            "model_file_at_most_64MB": ours["model_file_bytes"] <= 64 * 2**20,
+        }
+        result["datasets"][name] = entry
+        print(f"[{name}] {entry}", file=sys.stderr, flush=True)
+    write_json(result, args.json)
+
+
+if __name__ == "__main__":
+    main()
