@@ -12,6 +12,7 @@ docs/url-model-sweep.md comes from its output.
 from __future__ import annotations
 
 import argparse
+import json
 import sys
 import time
 from pathlib import Path
@@ -49,10 +50,10 @@ def score(keys, labs, split, **params) -> dict:
     started = time.perf_counter()
     model.fit(tr, [labs[i] for i in split.train])
     fit_s = time.perf_counter() - started
-    va = [keys[i] for i in split.test]
-    proba = model.predict_proba(va)
     index = {c: i for i, c in enumerate(model.classes_)}
-    y = np.array([index[labs[i]] for i in split.test])
+    rows = [i for i in split.test if labs[i] in index]  # a class unseen in fit: left out
+    proba = model.predict_proba([keys[i] for i in rows])
+    y = np.array([index[labs[i]] for i in rows])
     pred = proba.argmax(axis=1)
     return {"params": {k: (list(v) if isinstance(v, tuple) else v) for k, v in params.items()},
             "macro_f1": round(macro_f1(y, pred, len(model.classes_)), 4),
@@ -65,10 +66,18 @@ def main() -> None:
     parser.add_argument("--json", help="write the result here too")
     parser.add_argument("--datasets", default="open-directory-hosts,domain-categories")
     parser.add_argument("--max-iter", type=int, default=150)
+    parser.add_argument("--resume", help="a previous --json output: data sets in it are kept")
     args = parser.parse_args()
     out = {"benchmark": "url-model-sweep", "machine": machine(), "datasets": {}}
+    previous = {}
+    if args.resume and Path(args.resume).exists():
+        previous = json.loads(Path(args.resume).read_text())["datasets"]
     for name in args.datasets.split(","):
         keys, labs, split = load(name)
+        done = previous.get(name)
+        if done:
+            out["datasets"][name] = done
+            continue
         best = {"ngram_range": (1, 5), "C": 20.0, "n_features": 2**20, "use_tokens": True,
                 "max_iter": args.max_iter}
         rows = []
@@ -96,6 +105,8 @@ def main() -> None:
             "trials": rows,
             "best": {k: (list(v) if isinstance(v, tuple) else v) for k, v in best.items()},
         }
+        if args.json:  # after each data set, so a later failure keeps this one
+            Path(args.json).write_text(json.dumps(out, indent=2) + "\n", encoding="utf-8")
     write_json(out, args.json)
 
 

@@ -1,4 +1,4 @@
-"""cascade: acceptable-use categories for URLs; a cheap URL model first, a page fetch where it pays."""
+"""cascade: acceptable-use categories for URLs, a URL model first and a page fetch where it pays."""
 
 from cascade.errors import (
     CascadeError,

@@ -220,6 +220,42 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     return _finish(_summary(stats, evaluated=len(keys)), stats, args.quiet)
 
 
+def cmd_fetch(args: argparse.Namespace) -> int:
+    import asyncio
+
+    from cascade.fetch import Fetcher, FetchPolicy, StaticResolver, SystemResolver
+    from cascade.fetch.resolver import parse_resolve_overrides
+
+    policy = FetchPolicy(
+        ports=tuple(args.port) if args.port else (80, 443),
+        deadline_s=args.deadline, max_bytes=args.max_bytes,
+        max_redirects=args.max_redirects, obey_robots=not args.ignore_robots,
+        allow_networks=tuple(args.allow_network or ()),
+    )
+    if args.operator:
+        policy = policy.with_operator(args.operator)
+    resolver = SystemResolver()
+    if args.resolve:
+        resolver = StaticResolver(parse_resolve_overrides(args.resolve), fallback=resolver)
+    stats = ReadStats()
+    urls = [rec.url for rec in _input_records(args, stats)]
+
+    async def run() -> int:
+        failed = 0
+        async with Fetcher(policy, resolver) as fetcher:
+            with open_writer(args.output) as out:
+                async for result in fetcher.fetch_many(urls):
+                    row = result.to_dict(with_text=True)
+                    if row["text"] is not None and not args.full_text:
+                        row["text"] = row["text"][:args.text_chars]
+                    out.write(row)
+                    failed += not result.ok
+        return failed
+
+    failed = asyncio.run(run())
+    return _finish(_summary(stats, fetched=len(urls), not_ok=failed), stats, args.quiet)
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     from cascade.demo import run_demo
 
@@ -268,7 +304,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--no-group", action="store_true",
                    help="do not keep each registered domain on one side of the holdout")
     p.add_argument("--ngram-min", type=int, default=1)
-    p.add_argument("--ngram-max", type=int, default=5)
+    p.add_argument("--ngram-max", type=int, default=4)
     p.add_argument("--hash-bits", type=int, default=20, help="log2 of the hashing space")
     p.add_argument("--no-tokens", action="store_true", help="character n-grams only")
     p.add_argument("--C", type=float, default=20.0, help="inverse L2 strength")
@@ -302,6 +338,28 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--output", "-o", help="write the JSON here instead of stdout")
     p.add_argument("--precision-target", type=float, default=0.9)
     p.set_defaults(func=cmd_evaluate)
+
+    p = command("fetch", "Fetch pages through the sandboxed fetcher; one JSON result a URL.")
+    p.add_argument("urls", nargs="*", help="URLs to fetch (instead of --input)")
+    _add_input(p, required=False)
+    p.add_argument("--output", "-o", default="-")
+    p.add_argument("--resolve", action="append", metavar="HOST:ADDRESS",
+                   help="answer HOST with ADDRESS instead of asking DNS (repeatable; the "
+                        "address guard still applies)")
+    p.add_argument("--allow-network", action="append", metavar="CIDR",
+                   help="open a hole in the address guard (repeatable; for tests only)")
+    p.add_argument("--port", action="append", type=int,
+                   help="allowed port (repeatable; default 80 and 443)")
+    p.add_argument("--deadline", type=float, default=10.0, help="seconds for a whole fetch")
+    p.add_argument("--max-bytes", type=int, default=2 << 20, help="bytes read off the wire")
+    p.add_argument("--max-redirects", type=int, default=5)
+    p.add_argument("--ignore-robots", action="store_true",
+                   help="do not obey robots.txt (only where your policy allows it)")
+    p.add_argument("--operator", help="contact (URL or mail) put in the User-Agent")
+    p.add_argument("--text-chars", type=int, default=2000,
+                   help="characters of page text kept in the output (default 2000)")
+    p.add_argument("--full-text", action="store_true", help="keep the whole page text")
+    p.set_defaults(func=cmd_fetch)
 
     p = command("demo", "Run the whole job on the invented demo scenario into a folder.")
     p.add_argument("--out", default="demo-output", help="report folder (default demo-output)")

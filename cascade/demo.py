@@ -24,7 +24,8 @@ def _say(quiet: bool, text: str) -> None:
         print(f"demo: {text}", file=sys.stderr, flush=True)
 
 
-def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False) -> dict[str, Any]:
+def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
+             max_fetches: int = 400) -> dict[str, Any]:
     """Run the demo into ``out``; returns the report dict (also written as report.json)."""
     started = time.perf_counter()
     out.mkdir(parents=True, exist_ok=True)
@@ -60,6 +61,7 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False)
         for v in verdicts:
             writer.write(v.to_dict())
     needs = sum(v.needs_fetch for v in verdicts)
+    fetch_report = _fetch_stage(records, verdicts, out, max_fetches, quiet)
     examples = [model.explain(keys[i], top=5, n_classes=1).to_dict() for i in split.test[:5]]
     headline = {
         "urls": len(records),
@@ -69,16 +71,61 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False)
         "url_model_ece_15": metrics["ece_15"],
         "accuracy_weighted_by_lookups": metrics.get("weighted", {}).get("accuracy"),
         "share_marked_needs_fetch": round(needs / len(verdicts), 4),
+        "fetched": fetch_report["fetched"],
+        "fetch_outcomes": fetch_report["outcomes"],
         "seconds": round(time.perf_counter() - started, 1),
     }
     report = {"scenario": "Tallowmere Rail Cooperative (invented)", "seed": seed,
               "taxonomy": taxonomy.name, "model_version": model.version,
-              "headline": headline, "metrics": metrics, "explain_examples": examples}
+              "headline": headline, "metrics": metrics, "fetch": fetch_report,
+              "explain_examples": examples}
     (out / "report.json").write_text(json.dumps(report, indent=2, ensure_ascii=False) + "\n",
                                      encoding="utf-8")
     (out / "summary.md").write_text(_summary_markdown(report), encoding="utf-8")
     _say(quiet, "wrote verdicts.jsonl, report.json, summary.md")
     return report
+
+
+def _fetch_stage(records: list, verdicts: list, out: Path, max_fetches: int,
+                 quiet: bool) -> dict[str, Any]:
+    """Fetch the least confident URLs from the loopback site farm through the sandboxed
+    fetcher (the farm plays every scenario site; the address guard's only hole is the
+    farm's 127.0.0.1). The page-text stage that reads them comes in a later release."""
+    import asyncio
+    from collections import Counter
+
+    from cascade.fetch import Fetcher, FetchPolicy
+    from cascade.scenario.site_farm import SiteFarm
+
+    order = sorted(range(len(verdicts)), key=lambda i: verdicts[i].confidence)
+    chosen = [i for i in order if verdicts[i].needs_fetch][:max_fetches]
+    outcomes: Counter[str] = Counter()
+    with SiteFarm(records) as farm:
+        policy = FetchPolicy(ports=(farm.port,), allow_networks=("127.0.0.1/32",),
+                             per_host_delay_s=0.0, deadline_s=5.0)
+
+        def local(url: str) -> str:
+            key = normalize(url)
+            return f"http://{key.host}:{farm.port}{key.path}" + (
+                f"?{key.query}" if key.query else "")
+
+        async def run() -> float:
+            started = time.perf_counter()
+            async with Fetcher(policy, farm.resolver()) as fetcher:
+                with open_writer(out / "fetches.jsonl") as writer:
+                    async for result in fetcher.fetch_many(
+                            [local(verdicts[i].url) for i in chosen]):
+                        outcomes[str(result.outcome)] += 1
+                        row = result.to_dict(with_text=False)
+                        row["text_chars"] = len(result.text or "")
+                        writer.write(row)
+            return time.perf_counter() - started
+
+        seconds = asyncio.run(run())
+    _say(quiet, f"fetched the {len(chosen)} least confident URLs from the loopback site farm "
+               f"in {seconds:.1f}s -> fetches.jsonl")
+    return {"fetched": len(chosen), "outcomes": dict(outcomes),
+            "pages_per_s": round(len(chosen) / seconds, 1) if seconds else None}
 
 
 def _summary_markdown(report: dict[str, Any]) -> str:
@@ -96,8 +143,10 @@ def _summary_markdown(report: dict[str, Any]) -> str:
         f"| accuracy | {h['url_model_accuracy']:.4f} |",
         f"| macro-F1 | {h['url_model_macro_f1']:.4f} |",
         f"| expected calibration error (15 bins) | {h['url_model_ece_15']:.4f} |",
-        f"| accuracy weighted by lookups | {h['accuracy_weighted_by_lookups']} |",
+        f"| accuracy weighted by lookups | {h['accuracy_weighted_by_lookups'] or 0:.4f} |",
         f"| share of URLs the URL model is unsure of (< 0.8) | {h['share_marked_needs_fetch']} |",
+        f"| least confident URLs fetched from the loopback farm | {h['fetched']} |",
+        f"| fetch outcomes | {h['fetch_outcomes']} |",
         "",
         "## Accuracy by what the URL string says",
         "",

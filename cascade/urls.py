@@ -57,6 +57,7 @@ _HOST_LABEL = re.compile(r"^[a-z0-9_](?:[a-z0-9_\-]{0,61}[a-z0-9_])?$")
 # WHATWG "forbidden host code points" (minus '%', handled by decoding first).
 _FORBIDDEN_HOST = re.compile(r"[\x00-\x20#/:<>?@\[\\\]^|\x7f]")
 _TOKEN_SPLIT = re.compile(r"[^0-9a-z\u00c0-\uffff]+")
+_WORDS = re.compile(r"[0-9a-z\u00c0-\uffff]+")
 _DIGITS = re.compile(r"^[0-9]+$")
 
 _PSL = PublicSuffixList()
@@ -106,16 +107,18 @@ class UrlKey:
         """
         out = list(_host_tokens(self.host_unicode, self.public_suffix, self.registered_domain,
                                 self.is_ip))
-        path = _unquote_for_tokens(self.path.lower())
-        for word in _TOKEN_SPLIT.split(path):
-            if word:
-                out.append(("path", _word(word)))
+        path = self.path.lower()
+        if "%" in path:
+            path = _unquote_for_tokens(path)
+        out.extend([("path", f"<n>{len(w)}" if w.isdigit() else w)
+                    for w in _WORDS.findall(path)])
         if self.query:
             for pair in self.query.split("&"):
-                key = _unquote_for_tokens(pair.split("=", 1)[0].lower())
-                for word in _TOKEN_SPLIT.split(key):
-                    if word:
-                        out.append(("query", _word(word)))
+                key = pair.partition("=")[0].lower()
+                if "%" in key:
+                    key = _unquote_for_tokens(key)
+                out.extend([("query", f"<n>{len(w)}" if w.isdigit() else w)
+                            for w in _WORDS.findall(key)])
         return out
 
     def __str__(self) -> str:

@@ -109,3 +109,18 @@ def test_real_process_reads_stdin_and_reports_exit_code(workdir: Path) -> None:
     assert proc.returncode == EXIT_PARTIAL, proc.stderr
     assert len(proc.stdout.strip().splitlines()) == 1
     assert "Traceback" not in proc.stderr
+
+
+def test_fetch_command_prints_results_and_refuses_private_targets(capsys) -> None:
+    from cascade.scenario.site_farm import SiteFarm
+
+    with SiteFarm() as farm:
+        code = main(["--quiet", "fetch", "--resolve", "site.test:127.0.0.1",
+                     "--resolve", "inside.test:10.1.2.3", "--allow-network", "127.0.0.1/32",
+                     "--port", str(farm.port), "--deadline", "3",
+                     farm.url("site.test", "/_hostile/page"),
+                     farm.url("inside.test", "/")])
+    assert code == EXIT_OK
+    rows = {r["url"]: r for r in map(json.loads, capsys.readouterr().out.splitlines())}
+    assert rows[farm.url("site.test", "/_hostile/page")]["outcome"] == "ok"
+    assert rows[farm.url("inside.test", "/")]["outcome"] == "blocked-address"

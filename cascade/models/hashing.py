@@ -101,21 +101,27 @@ def token_hashes(
     """Hash whole tagged tokens ``(place, word)`` with keyed BLAKE2b: the same word in
     another place is another feature. Returns ``(rows, hashes)`` as ``char_ngram_hashes``.
     (A handful of tokens per URL: a cached C hash per token beats numpy set-up here.)"""
-    rows: list[int] = []
-    hashes: list[int] = []
-    for i, tokens in enumerate(token_lists):
-        for place, word in tokens:
-            hashes.append(_token_hash(place, word, seed))
-            rows.append(i)
-    return np.array(rows, dtype=np.int64), np.array(hashes, dtype=np.uint64)
+    cache = _TOKEN_CACHE.setdefault(seed, {})
+    if len(cache) > 1 << 20:
+        cache.clear()  # bounded memory
+    counts = [len(tokens) for tokens in token_lists]
+    hashes = [cache.get(t) or _token_hash(cache, t, seed) for tokens in token_lists
+              for t in tokens]
+    rows = np.repeat(np.arange(len(token_lists), dtype=np.int64), counts)
+    return rows, np.array(hashes, dtype=np.uint64)
 
 
-@lru_cache(maxsize=1 << 18)
-def _token_hash(place: str, word: str, seed: int) -> int:
-    # tokens repeat across URLs (path words, suffixes, domains): the cache makes most free
+# tokens repeat across URLs (path words, suffixes, domains): a cache makes most free
+_TOKEN_CACHE: dict[int, dict[tuple[str, str], int]] = {}
+
+
+def _token_hash(cache: dict[tuple[str, str], int], token: tuple[str, str], seed: int) -> int:
+    place, word = token
     data = (place + "\x1f" + word).encode("utf-8", "surrogatepass")[:MAX_TOKEN_BYTES]
     key = seed.to_bytes(8, "little", signed=True)
-    return int.from_bytes(blake2b(data, digest_size=8, key=key).digest(), "little")
+    value = int.from_bytes(blake2b(data, digest_size=8, key=key).digest(), "little") or 1
+    cache[token] = value
+    return value
 
 
 def columns(hashes: np.ndarray, n_features: int) -> np.ndarray:

@@ -108,6 +108,9 @@ class UrlModel:
     C : inverse L2 regularization strength of the logistic regression.
     max_iter : L-BFGS iterations.
     min_count : a hashed column seen in fewer training rows gets no weight.
+    class_balance : weight each training row by ``(1 / class frequency) ** class_balance``
+        (0: no weighting). Raises macro-F1 on skewed data at some cost in accuracy and
+        calibration; the temperature is still fitted, on unweighted out-of-fold rows.
     calibration_folds : the temperature is fitted on out-of-fold logits from this many fits,
         each leaving out a share of the registered domains (so it is measured on domains
         the model has not seen, as in use); the final weights are fitted on all rows.
@@ -117,12 +120,13 @@ class UrlModel:
 
     def __init__(
         self,
-        ngram_range: tuple[int, int] = (1, 5),
+        ngram_range: tuple[int, int] = (1, 4),
         n_features: int = 2**20,
         use_tokens: bool = True,
         C: float = 20.0,
         max_iter: int = 150,
         min_count: int = 2,
+        class_balance: float = 0.0,
         calibration_folds: int = 3,
         seed: int = 0,
     ) -> None:
@@ -132,6 +136,7 @@ class UrlModel:
         self.C = C
         self.max_iter = max_iter
         self.min_count = min_count
+        self.class_balance = class_balance
         self.calibration_folds = calibration_folds
         self.seed = seed
 
@@ -197,6 +202,11 @@ class UrlModel:
         index = {c: i for i, c in enumerate(classes)}
         y = np.array([index[lab] for lab in labels], dtype=np.int64)
         weight = None if sample_weight is None else np.asarray(sample_weight, dtype=np.float64)
+        if self.class_balance:
+            freq = np.bincount(y, minlength=len(classes)).astype(np.float64)
+            per_class = (freq.sum() / np.maximum(freq, 1.0)) ** self.class_balance
+            balance = per_class[y] / per_class[y].mean()
+            weight = balance if weight is None else weight * balance
         X = self.transform(keys)
         present = np.unique(y)
         if len(present) < 2:
@@ -268,8 +278,25 @@ class UrlModel:
         """Temperature-scaled logits, shape (n, n_classes)."""
         self._check_fitted()
         X = self.transform(urls)
-        return (np.asarray(X @ self.weights_, dtype=np.float64) + self.intercept_) / \
+        row_of, compact = self._compact_weights()
+        X = sp.csr_matrix((X.data, row_of[X.indices], X.indptr),
+                          shape=(X.shape[0], compact.shape[0]))
+        return (np.asarray(X @ compact, dtype=np.float64) + self.intercept_) / \
             self.temperature_
+
+    def _compact_weights(self) -> tuple[np.ndarray, np.ndarray]:
+        """The non-zero weight rows packed together (row 0 all zeros) and a column-to-row
+        map: the table then fits in a CPU cache, which makes each lookup's gather fast."""
+        cached = getattr(self, "_compact", None)
+        if cached is not None and cached[2] is self.weights_:
+            return cached[0], cached[1]
+        nonzero = np.flatnonzero(np.any(self.weights_ != 0, axis=1))
+        row_of = np.zeros(self.n_features, dtype=np.int32)
+        row_of[nonzero] = np.arange(1, len(nonzero) + 1, dtype=np.int32)
+        compact = np.vstack([np.zeros((1, self.weights_.shape[1]), np.float32),
+                             self.weights_[nonzero]])
+        self._compact = (row_of, compact, self.weights_)
+        return row_of, compact
 
     def predict_proba(self, urls: Iterable[str | UrlKey]) -> np.ndarray:
         """Calibrated class probabilities, shape (n, n_classes), columns in ``classes_`` order."""
@@ -289,7 +316,8 @@ class UrlModel:
             hashes = np.concatenate((hashes, token_hashes([key.tokens()], self.seed)[1]))
         cols = columns(hashes, self.n_features)
         t = self.temperature_
-        logits = self.weights_.take(cols, axis=0).sum(axis=0, dtype=np.float64)
+        row_of, compact = self._compact_weights()
+        logits = compact.take(row_of.take(cols), axis=0).sum(axis=0, dtype=np.float64)
         logits *= 1.0 / (t * math.sqrt(max(1, cols.shape[0])))
         logits += self.intercept_ / t
         logits -= logits.max()
@@ -426,6 +454,7 @@ class UrlModel:
             "C": self.C,
             "max_iter": self.max_iter,
             "min_count": self.min_count,
+            "class_balance": self.class_balance,
             "calibration_folds": self.calibration_folds,
             "seed": self.seed,
         }

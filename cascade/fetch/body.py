@@ -1,0 +1,77 @@
+"""Reading a response body within caps: bytes off the wire, bytes after Content-Encoding,
+and the number of encoding layers. Written here because httpx has no maximum body size;
+decoding is zlib's, streamed with ``max_length`` so a bomb never expands past the cap.
+"""
+
+from __future__ import annotations
+
+import zlib
+from collections.abc import AsyncIterator
+
+
+class BodyTooLarge(Exception):  # noqa: N818 - internal signal, mapped to an outcome
+    def __init__(self, what: str) -> None:
+        super().__init__(what)
+
+
+class BadEncoding(Exception):  # noqa: N818 - internal signal, mapped to an outcome
+    pass
+
+
+def parse_encodings(header: str | None, max_layers: int) -> list[str]:
+    """Content-Encoding values in the order applied; ``identity`` dropped.
+    Raises ``BadEncoding`` for an unsupported coding or too many layers."""
+    if not header:
+        return []
+    codings = [c.strip().lower() for c in header.split(",") if c.strip()]
+    codings = [c for c in codings if c != "identity"]
+    for c in codings:
+        if c not in ("gzip", "x-gzip", "deflate"):
+            raise BadEncoding(f"unsupported Content-Encoding {c!r}")
+    if len(codings) > max_layers:
+        raise BadEncoding(f"{len(codings)} Content-Encoding layers (at most {max_layers})")
+    return codings
+
+
+class _Layer:
+    def __init__(self, coding: str) -> None:
+        self.coding = coding
+        # gzip: wbits 16+15; deflate: zlib stream, with raw deflate tried if the first
+        # bytes are not a zlib header (servers send both under the name "deflate")
+        self._d = zlib.decompressobj(31 if coding in ("gzip", "x-gzip") else 15)
+        self._started = False
+
+    def feed(self, data: bytes, room: int) -> bytes:
+        if not self._started and self.coding == "deflate" and data:
+            self._started = True
+            if (data[0] & 0x0F) != 8:
+                self._d = zlib.decompressobj(-15)
+        self._started = True
+        try:
+            out = self._d.decompress(data, room + 1)
+        except zlib.error as exc:
+            raise BadEncoding(f"{self.coding} data is corrupt: {exc}") from None
+        if len(out) > room or self._d.unconsumed_tail:
+            raise BodyTooLarge("decoded body over the cap")
+        return out
+
+
+async def read_capped(
+    chunks: AsyncIterator[bytes], encodings: list[str], max_bytes: int, max_decoded: int
+) -> tuple[bytes, int]:
+    """Read all chunks; return ``(decoded body, bytes read off the wire)``.
+    Raises ``BodyTooLarge`` as soon as a cap is passed (nothing more is read)."""
+    layers = [_Layer(c) for c in reversed(encodings)]
+    wire = 0
+    out = bytearray()
+    async for chunk in chunks:
+        wire += len(chunk)
+        if wire > max_bytes:
+            raise BodyTooLarge(f"more than {max_bytes} bytes on the wire")
+        data = chunk
+        for layer in layers:
+            data = layer.feed(data, max_decoded - len(out))
+        if len(out) + len(data) > max_decoded:
+            raise BodyTooLarge(f"more than {max_decoded} bytes after decoding")
+        out += data
+    return bytes(out), wire

@@ -1,0 +1,439 @@
+"""The sandboxed fetcher: text only, within strict limits, never into private networks.
+
+Every URL becomes one ``FetchResult``; a failure is an outcome code, never an exception.
+For each hop: normalize the URL, refuse userinfo and disallowed schemes and ports, resolve
+the host (injectable resolver), keep only addresses the guard allows, pin the connection to
+one of them, obey robots.txt, wait for the host's turn, send a GET with no cookies, no
+credentials and no referer, and follow a redirect by hand (the redirect's body is never
+read). The whole fetch, DNS to last byte, runs under one deadline.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import email.utils
+import time
+from collections.abc import AsyncIterator, Iterable
+from dataclasses import dataclass
+from urllib.parse import urljoin
+
+import httpcore
+import httpx
+from tenacity import (
+    AsyncRetrying,
+    RetryError,
+    retry_if_exception_type,
+    stop_after_attempt,
+)
+
+from cascade.errors import InvalidURL
+from cascade.fetch.address_guard import AddressGuard
+from cascade.fetch.body import BadEncoding, BodyTooLarge, parse_encodings, read_capped
+from cascade.fetch.charset import decode_text
+from cascade.fetch.outcomes import FetchOutcome, FetchResult, Hop
+from cascade.fetch.policy import FetchPolicy
+from cascade.fetch.resolver import ResolutionError, Resolver, SystemResolver
+from cascade.fetch.robots import RobotsCache
+from cascade.fetch.transport import PinnedTransport, pinned, unpin
+from cascade.urls import DEFAULT_PORTS, UrlKey, normalize
+
+REDIRECT_STATUSES = (301, 302, 303, 307, 308)
+TRANSIENT_STATUSES = (429, 502, 503, 504)
+
+
+class _Stop(Exception):  # noqa: N818 - internal: ends a fetch with an outcome
+    def __init__(self, outcome: FetchOutcome, detail: str, status: int | None = None) -> None:
+        super().__init__(detail)
+        self.outcome = outcome
+        self.detail = detail
+        self.status = status
+
+
+class _Transient(Exception):  # noqa: N818 - internal: worth another try
+    def __init__(self, detail: str, wait_s: float = 0.0, status: int | None = None) -> None:
+        super().__init__(detail)
+        self.detail = detail
+        self.wait_s = wait_s
+        self.status = status
+
+
+@dataclass
+class _HostState:
+    slots: asyncio.Semaphore
+    next_start: float = 0.0
+
+
+class Fetcher:
+    """Async fetcher. Use as ``async with Fetcher(policy) as f: await f.fetch(url)``.
+
+    ``resolver`` answers DNS (default: the system's); ``ssl_context`` replaces the default
+    certificate checks (tests pass one trusting their own CA).
+    """
+
+    def __init__(self, policy: FetchPolicy | None = None, resolver: Resolver | None = None,
+                 ssl_context=None) -> None:
+        self.policy = policy or FetchPolicy()
+        self.resolver = resolver or SystemResolver()
+        self.guard = AddressGuard(self.policy.allow_networks)
+        limits = httpx.Limits(max_connections=self.policy.concurrency,
+                              max_keepalive_connections=self.policy.concurrency,
+                              keepalive_expiry=5.0)
+        self.transport = PinnedTransport(limits, ssl_context=ssl_context)
+        self._global = asyncio.Semaphore(self.policy.concurrency)
+        self._hosts: dict[str, _HostState] = {}
+        self._robots = RobotsCache(self.policy.robots_cache_s)
+
+    async def __aenter__(self) -> Fetcher:
+        return self
+
+    async def __aexit__(self, *exc: object) -> None:
+        await self.aclose()
+
+    async def aclose(self) -> None:
+        await self.transport.aclose()
+
+    # ------------------------------------------------------------------ public
+    async def fetch(self, url: str) -> FetchResult:
+        """Fetch one URL within the policy; never raises for anything the network does."""
+        started = time.monotonic()
+        hops: list[Hop] = []
+        async with self._global:
+            try:
+                async with asyncio.timeout(self.policy.deadline_s):
+                    return await self._fetch(url, started, hops)
+            except TimeoutError:
+                return self._result(url, hops, started, FetchOutcome.TIMEOUT,
+                                    f"deadline of {self.policy.deadline_s} s passed")
+            except _Stop as stop:
+                return self._result(url, hops, started, stop.outcome, stop.detail,
+                                    status=stop.status)
+
+    async def fetch_many(self, urls: Iterable[str], window: int | None = None
+                         ) -> AsyncIterator[FetchResult]:
+        """Fetch many URLs, at most ``window`` (default: the policy's concurrency) in flight;
+        results come as they finish. Memory stays bounded by the window, not the count."""
+        window = window or self.policy.concurrency
+        it = iter(urls)
+        running: set[asyncio.Task[FetchResult]] = set()
+        try:
+            for url in it:
+                running.add(asyncio.create_task(self.fetch(url)))
+                if len(running) >= window:
+                    done, running = await asyncio.wait(running,
+                                                       return_when=asyncio.FIRST_COMPLETED)
+                    for task in done:
+                        yield task.result()
+            while running:
+                done, running = await asyncio.wait(running, return_when=asyncio.FIRST_COMPLETED)
+                for task in done:
+                    yield task.result()
+        finally:
+            for task in running:
+                task.cancel()
+
+    # ------------------------------------------------------------------ steps
+    def _result(self, url: str, hops: list[Hop], started: float, outcome: FetchOutcome,
+                detail: str = "", **kw) -> FetchResult:
+        final = hops[-1].url if hops else url
+        return FetchResult(url=url, final_url=kw.pop("final_url", final), outcome=outcome,
+                           elapsed_ms=(time.monotonic() - started) * 1000,
+                           redirects=tuple(hops[:-1]) if hops else (), detail=detail, **kw)
+
+    def _check_url(self, url: str) -> UrlKey:
+        try:
+            key = normalize(url)
+        except InvalidURL as exc:
+            raise _Stop(FetchOutcome.BAD_URL, exc.reason) from None
+        if key.had_userinfo:
+            raise _Stop(FetchOutcome.BAD_URL, "the URL carries user credentials")
+        if key.scheme not in self.policy.schemes:
+            raise _Stop(FetchOutcome.BAD_URL, f"scheme {key.scheme} is not allowed")
+        port = key.port or DEFAULT_PORTS[key.scheme]
+        if port not in self.policy.ports:
+            raise _Stop(FetchOutcome.BAD_URL, f"port {port} is not allowed")
+        return key
+
+    async def _address(self, key: UrlKey, port: int) -> str:
+        if key.is_ip:
+            answers = [key.host]
+        else:
+            try:
+                answers = await self.resolver.resolve(key.host, port)
+            except ResolutionError as exc:
+                raise _Stop(FetchOutcome.DNS_ERROR, str(exc)) from None
+        refused = []
+        for address in answers:
+            decision = self.guard.check(address)
+            if decision.allowed:
+                return decision.address
+            refused.append(f"{address}: {decision.reason}")
+        raise _Stop(FetchOutcome.BLOCKED_ADDRESS, "; ".join(refused[:4]) or "no address")
+
+    async def _host_turn(self, host: str) -> _HostState:
+        state = self._hosts.get(host)
+        if state is None:
+            if len(self._hosts) > 100_000:
+                self._hosts.clear()  # bounded memory on very long runs
+            state = self._hosts[host] = _HostState(asyncio.Semaphore(
+                self.policy.per_host_concurrency))
+        return state
+
+    async def _send(self, key: UrlKey, address: str, max_bytes: int) -> tuple[
+            httpx.Response, bytes | None]:
+        """One GET to a pinned address. Returns the response; for a redirect or error status
+        the body is not read (None); otherwise the capped, decoded body."""
+        port = key.port or DEFAULT_PORTS[key.scheme]
+        state = await self._host_turn(key.host)
+        async with state.slots:
+            now = time.monotonic()
+            if state.next_start > now:
+                await asyncio.sleep(state.next_start - now)
+            state.next_start = max(now, state.next_start) + self.policy.per_host_delay_s
+            request = httpx.Request("GET", key.url, headers={
+                "User-Agent": self.policy.user_agent,
+                "Accept": "text/html,application/xhtml+xml,text/plain;q=0.9,*/*;q=0.1",
+                "Accept-Encoding": "gzip, deflate",
+                "Accept-Language": "en;q=0.9, *;q=0.5",
+            }, extensions={"timeout": {"connect": self.policy.connect_timeout_s,
+                                       "read": self.policy.deadline_s,
+                                       "write": self.policy.deadline_s,
+                                       "pool": self.policy.deadline_s}})
+            token = pinned(key.host, port, address)
+            try:
+                response = await self.transport.handle_async_request(request)
+            except httpx.ConnectError as exc:
+                text = str(exc)
+                if "CERTIFICATE" in text.upper() or "SSL" in text.upper():
+                    raise _Stop(FetchOutcome.TLS_ERROR, text[:300]) from None
+                raise _Transient(f"connect: {text[:300]}") from None
+            except (httpx.ReadError, httpx.WriteError, httpx.RemoteProtocolError) as exc:
+                text = str(exc)
+                if "buffer too long" in text or "exceeded maximum size" in text:
+                    raise _Stop(FetchOutcome.TOO_LARGE, "response headers too large") from None
+                if isinstance(exc, httpx.RemoteProtocolError):
+                    raise _Stop(FetchOutcome.BAD_RESPONSE, f"not HTTP: {text[:200]}") from None
+                raise _Transient(f"read: {text[:300]}") from None
+            except httpx.TimeoutException as exc:
+                raise _Stop(FetchOutcome.TIMEOUT, f"{type(exc).__name__}") from None
+            except (httpx.HTTPError, httpcore.ConnectError) as exc:
+                raise _Stop(FetchOutcome.CONNECT_ERROR, str(exc)[:300]) from None
+            finally:
+                unpin(token)
+            try:
+                header_bytes = sum(len(k) + len(v) + 4 for k, v in response.headers.raw)
+                if header_bytes > self.policy.max_header_bytes:
+                    raise _Stop(FetchOutcome.TOO_LARGE,
+                                f"response headers are {header_bytes} bytes", response.status_code)
+                status = response.status_code
+                if status in TRANSIENT_STATUSES:
+                    wait = _retry_after(response.headers.get("retry-after"))
+                    if wait is not None and wait > self.policy.max_retry_after_s:
+                        raise _Stop(FetchOutcome.HTTP_ERROR,
+                                    f"status {status}, Retry-After {wait:.0f} s is over the "
+                                    f"limit of {self.policy.max_retry_after_s} s", status)
+                    raise _Transient(f"status {status}", wait or 0.0, status)
+                if status in REDIRECT_STATUSES or status >= 400:
+                    return response, None
+                body = await self._body(response, max_bytes)
+                return response, body
+            finally:
+                await response.aclose()
+
+    async def _body(self, response: httpx.Response, max_bytes: int) -> bytes:
+        try:
+            encodings = parse_encodings(response.headers.get("content-encoding"),
+                                        self.policy.max_encoding_layers)
+        except BadEncoding as exc:
+            raise _Stop(FetchOutcome.BAD_RESPONSE, str(exc), response.status_code) from None
+        length = response.headers.get("content-length")
+        if length and length.isdigit() and int(length) > max_bytes:
+            raise _Stop(FetchOutcome.TOO_LARGE, f"Content-Length {length} is over the cap",
+                        response.status_code)
+        try:
+            body, wire = await read_capped(_raw(response), encodings, max_bytes,
+                                           self.policy.max_decoded_bytes)
+        except BodyTooLarge as exc:
+            raise _Stop(FetchOutcome.TOO_LARGE, str(exc), response.status_code) from None
+        except BadEncoding as exc:
+            raise _Stop(FetchOutcome.BAD_RESPONSE, str(exc), response.status_code) from None
+        except (httpx.ReadError, httpx.RemoteProtocolError) as exc:
+            raise _Stop(FetchOutcome.BAD_RESPONSE, f"body broken off: {exc}"[:300],
+                        response.status_code) from None
+        response.extensions["cascade_wire_bytes"] = wire
+        return body
+
+    async def _get(self, key: UrlKey, address: str, max_bytes: int) -> tuple[
+            httpx.Response, bytes | None]:
+        """``_send`` with retries for transient failures (tenacity), inside the deadline."""
+        last: _Transient | None = None
+        try:
+            async for attempt in AsyncRetrying(
+                stop=stop_after_attempt(self.policy.retries + 1),
+                retry=retry_if_exception_type(_Transient),
+                wait=lambda state: _backoff(state),
+                reraise=False,
+            ):
+                with attempt:
+                    return await self._send(key, address, max_bytes)
+        except RetryError as exc:
+            last = exc.last_attempt.exception()  # type: ignore[assignment]
+        if last is not None and last.status is not None:
+            raise _Stop(FetchOutcome.HTTP_ERROR, f"{last.detail} after "
+                        f"{self.policy.retries + 1} tries", last.status)
+        raise _Stop(FetchOutcome.CONNECT_ERROR, last.detail if last else "failed")
+
+    async def _robots_allowed(self, key: UrlKey, address: str) -> tuple[bool, str]:
+        origin = f"{key.scheme}://{key.host}" + (f":{key.port}" if key.port else "")
+
+        async def load(origin_url: str) -> tuple[int | None, bytes, str]:
+            # its own share of the deadline, so a stalling robots.txt is "unreachable"
+            # (RFC 9309 section 2.3.1.4: assume complete disallow), not a fetch timeout
+            try:
+                async with asyncio.timeout(self.policy.deadline_s / 3):
+                    return await load_within(origin_url)
+            except TimeoutError:
+                return None, b"", "timed out"
+
+        async def load_within(origin_url: str) -> tuple[int | None, bytes, str]:
+            target = normalize(origin_url + "/robots.txt")
+            hops_left = 5  # RFC 9309 section 2.3.1.2: follow at least five redirects
+            current, current_address = target, address
+            while True:
+                try:
+                    response, body = await self._get(current, current_address,
+                                                     self.policy.robots_max_bytes)
+                except _Stop as stop:
+                    if stop.outcome is FetchOutcome.HTTP_ERROR and stop.status:
+                        return stop.status, b"", stop.detail
+                    if stop.outcome is FetchOutcome.TOO_LARGE:
+                        return None, b"", "robots.txt too large"
+                    return None, b"", stop.detail
+                if response.status_code in REDIRECT_STATUSES and hops_left > 0:
+                    location = response.headers.get("location")
+                    if not location:
+                        return None, b"", "redirect without Location"
+                    hops_left -= 1
+                    current = self._check_url(urljoin(current.url, location))
+                    port = current.port or DEFAULT_PORTS[current.scheme]
+                    current_address = await self._address(current, port)
+                    continue
+                return response.status_code, body or b"", f"status {response.status_code}"
+
+        try:
+            rules = await self._robots.rules(origin, load)
+        except _Stop as stop:
+            return False, f"robots.txt: {stop.detail}"
+        agent = self.policy.user_agent.split("/", 1)[0]
+        allowed = rules.allows(key.url, agent)
+        return allowed, rules.detail
+
+    async def _fetch(self, url: str, started: float, hops: list[Hop]) -> FetchResult:
+        current = url
+        for _ in range(self.policy.max_redirects + 1):
+            key = self._check_url(current)
+            port = key.port or DEFAULT_PORTS[key.scheme]
+            try:
+                address = await self._address(key, port)
+            except _Stop:
+                hops.append(Hop(key.url, None, None))
+                raise
+            if self.policy.obey_robots:
+                allowed, why = await self._robots_allowed(key, address)
+                if not allowed:
+                    hops.append(Hop(key.url, address, None))
+                    raise _Stop(FetchOutcome.ROBOTS_DISALLOWED, why)
+            try:
+                response, body = await self._get(key, address, self.policy.max_bytes)
+            except _Stop:
+                hops.append(Hop(key.url, address, None))
+                raise
+            status = response.status_code
+            hops.append(Hop(key.url, address, status))
+            if status in REDIRECT_STATUSES:
+                location = response.headers.get("location")
+                if not location:
+                    raise _Stop(FetchOutcome.HTTP_ERROR, "redirect without Location", status)
+                current = urljoin(key.url, location)
+                continue
+            if status >= 400:
+                raise _Stop(FetchOutcome.HTTP_ERROR, f"status {status}", status)
+            content_type = response.headers.get("content-type")
+            media = (content_type or "").split(";", 1)[0].strip().lower()
+            if media not in self.policy.content_types:
+                raise _Stop(FetchOutcome.NOT_TEXT,
+                            f"content type {media or '(none)'} is not allowed", status)
+            assert body is not None
+            if _looks_binary(body):
+                raise _Stop(FetchOutcome.NOT_TEXT, "binary bytes behind a text content type",
+                            status)
+            text, codec = decode_text(body, content_type)
+            return self._result(
+                url, hops, started, FetchOutcome.OK, "", status=status,
+                content_type=media, charset=codec, text=text,
+                bytes_read=int(response.extensions.get("cascade_wire_bytes", len(body))))
+        raise _Stop(FetchOutcome.TOO_MANY_REDIRECTS,
+                    f"more than {self.policy.max_redirects} redirects")
+
+
+async def _raw(response: httpx.Response) -> AsyncIterator[bytes]:
+    async for chunk in response.stream:  # type: ignore[union-attr]
+        yield chunk
+
+
+def _looks_binary(body: bytes) -> bool:
+    head = body[:4096]
+    if head.startswith((b"\xff\xfe", b"\xfe\xff")):
+        return False  # UTF-16 text has NULs
+    return b"\x00" in head
+
+
+def _retry_after(value: str | None) -> float | None:
+    """RFC 9110 section 10.2.3: seconds, or an HTTP date."""
+    if not value:
+        return None
+    value = value.strip()
+    if value.isdigit():
+        return float(value)
+    try:
+        when = email.utils.parsedate_to_datetime(value)
+    except (TypeError, ValueError):
+        return None
+    return max(0.0, when.timestamp() - time.time())
+
+
+def _backoff(state) -> float:
+    exc = state.outcome.exception() if state.outcome else None
+    wait = getattr(exc, "wait_s", 0.0) or 0.0
+    return max(wait, min(2.0, 0.1 * 2 ** (state.attempt_number - 1)))
+
+
+class SyncFetcher:
+    """The blocking twin of ``Fetcher``: same policy, same results, its own event loop."""
+
+    def __init__(self, policy: FetchPolicy | None = None, resolver: Resolver | None = None,
+                 ssl_context=None) -> None:
+        self._loop = asyncio.new_event_loop()
+        self._fetcher = self._loop.run_until_complete(self._make(policy, resolver, ssl_context))
+
+    @staticmethod
+    async def _make(policy, resolver, ssl_context) -> Fetcher:
+        return Fetcher(policy, resolver, ssl_context)
+
+    def fetch(self, url: str) -> FetchResult:
+        return self._loop.run_until_complete(self._fetcher.fetch(url))
+
+    def fetch_many(self, urls: Iterable[str]) -> list[FetchResult]:
+        async def run() -> list[FetchResult]:
+            return [r async for r in self._fetcher.fetch_many(urls)]
+
+        return self._loop.run_until_complete(run())
+
+    def close(self) -> None:
+        self._loop.run_until_complete(self._fetcher.aclose())
+        self._loop.close()
+
+    def __enter__(self) -> SyncFetcher:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()

@@ -1,0 +1,64 @@
+"""``FetchPolicy``: every limit of the sandboxed fetcher, in one frozen object.
+
+Change a copy with ``dataclasses.replace(policy, deadline_s=5.0)``. docs/fetching.md says
+why each default is what it is.
+"""
+
+from __future__ import annotations
+
+import ipaddress
+from dataclasses import dataclass, field
+
+DEFAULT_CONTENT_TYPES = ("text/html", "application/xhtml+xml", "text/plain")
+
+
+@dataclass(frozen=True)
+class FetchPolicy:
+    """Limits for one fetcher. Sizes in bytes, times in seconds."""
+
+    schemes: tuple[str, ...] = ("http", "https")
+    ports: tuple[int, ...] = (80, 443)
+    max_redirects: int = 5
+    deadline_s: float = 10.0  # the whole fetch: DNS, robots.txt, every hop, the body
+    connect_timeout_s: float = 5.0
+    max_bytes: int = 2 << 20  # bytes read off the wire (compressed)
+    max_decoded_bytes: int = 4 << 20  # bytes after Content-Encoding is undone
+    max_encoding_layers: int = 2  # e.g. "gzip" is 1; "gzip, br" is 2
+    max_header_bytes: int = 32 << 10  # all response header names and values
+    content_types: tuple[str, ...] = DEFAULT_CONTENT_TYPES
+    user_agent: str = "cascade-fetcher/0.1 (URL categorization; operator not configured)"
+    obey_robots: bool = True
+    robots_max_bytes: int = 500 << 10  # RFC 9309 section 2.5: parse at least 500 KiB
+    robots_cache_s: float = 24 * 3600.0  # RFC 9309 section 2.4: no longer than 24 hours
+    per_host_concurrency: int = 2
+    per_host_delay_s: float = 0.5  # least time between two requests to one host
+    concurrency: int = 64  # fetches in flight at once, all hosts together
+    retries: int = 2  # extra tries for transient failures, within the deadline
+    max_retry_after_s: float = 5.0  # a longer Retry-After is not waited for
+    allow_networks: tuple[ipaddress.IPv4Network | ipaddress.IPv6Network, ...] = field(
+        default=())  # holes in the address guard: explicit, empty by default
+
+    def __post_init__(self) -> None:
+        for name in ("deadline_s", "connect_timeout_s"):
+            if not getattr(self, name) > 0:
+                raise ValueError(f"FetchPolicy.{name} must be positive")
+        for name in ("max_bytes", "max_decoded_bytes", "max_header_bytes", "concurrency",
+                     "per_host_concurrency", "robots_max_bytes"):
+            if getattr(self, name) < 1:
+                raise ValueError(f"FetchPolicy.{name} must be at least 1")
+        if self.max_redirects < 0 or self.retries < 0 or self.max_encoding_layers < 0:
+            raise ValueError("FetchPolicy.max_redirects, retries and max_encoding_layers "
+                             "must not be negative")
+        bad = [s for s in self.schemes if s not in ("http", "https")]
+        if bad:
+            raise ValueError(f"FetchPolicy.schemes may hold only http and https, not {bad}")
+        if any(not 0 < p < 65536 for p in self.ports):
+            raise ValueError("FetchPolicy.ports must be TCP ports (1-65535)")
+        object.__setattr__(self, "allow_networks", tuple(
+            ipaddress.ip_network(n) for n in self.allow_networks))
+
+    def with_operator(self, contact: str) -> FetchPolicy:
+        """A copy whose user agent names the operator (a URL or mail address to reach)."""
+        from dataclasses import replace
+
+        return replace(self, user_agent=f"cascade-fetcher/0.1 (URL categorization; {contact})")
