@@ -29,6 +29,7 @@ test: $(VENV)/.installed
 bench: $(VENV)/.installed-bench
 	mkdir -p out
 	$(BIN)/python benchmarks/url_model.py --json out/url_model.json
+	$(BIN)/python benchmarks/fetch.py --json out/fetch.json
 
 clean:
 	rm -rf $(VENV) demo-output out .pytest_cache .ruff_cache .hypothesis

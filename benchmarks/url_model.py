@@ -145,16 +145,27 @@ def run_fasttext(train, ytrain, test, ytest, classes, seed: int, autotune_s: int
             with val_path.open("w", encoding="utf-8") as fh:
                 for u, y in val_rows:
                     fh.write(f"__label__{y} {_ft_text(u)}\n")
-            probe = _ft_train(fasttext, fit_rows, Path(tmp) / "fit.txt",
-                              autotuneValidationFile=str(val_path),
-                              autotuneDuration=autotune_s, thread=1, seed=seed)
-            a = probe.f.getArgs()
-            settings = dict(minn=a.minn, maxn=a.maxn, dim=a.dim, epoch=a.epoch, lr=a.lr,
-                            wordNgrams=a.wordNgrams, bucket=a.bucket)
-            tuned = True
+            try:
+                probe = _ft_train(fasttext, fit_rows, Path(tmp) / "fit.txt",
+                                  autotuneValidationFile=str(val_path),
+                                  autotuneDuration=autotune_s, thread=1, seed=seed)
+                a = probe.f.getArgs()
+                settings = dict(minn=a.minn, maxn=a.maxn, dim=a.dim, epoch=a.epoch, lr=a.lr,
+                                wordNgrams=a.wordNgrams, bucket=a.bucket)
+                tuned = True
+            except RuntimeError as exc:  # autotune itself can diverge ("Encountered NaN")
+                tuned = f"autotune failed ({exc}); fixed settings used"
         started = time.perf_counter()
-        model = _ft_train(fasttext, rows, Path(tmp) / "train.txt", thread=1, seed=seed,
-                          **settings)
+        for _ in range(4):  # autotune's learning rate can diverge on all rows: halve it
+            try:
+                model = _ft_train(fasttext, rows, Path(tmp) / "train.txt", thread=1,
+                                  seed=seed, **settings)
+                break
+            except RuntimeError as exc:  # fastText: "Encountered NaN."
+                settings["lr"] = settings["lr"] / 2
+                settings["lr_halved_after"] = str(exc)
+                settings.pop("lr_halved_after")
+                tuned = f"autotuned, lr halved to {settings['lr']:.4f} after a NaN"
         fit_s = time.perf_counter() - started
     texts = [_ft_text(u) for u in test]
     labels, _ = model.predict(texts, k=1)

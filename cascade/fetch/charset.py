@@ -30,9 +30,13 @@ def codec_for(label: str | None) -> str | None:
     label = label.strip().lower()
     label = _WHATWG_ALIASES.get(label, label)
     try:
-        return codecs.lookup(label).name
+        info = codecs.lookup(label)
     except LookupError:
         return None
+    if not getattr(info, "_is_text_encoding", True) or info.name in ("idna", "undefined",
+                                                                     "punycode"):
+        return None  # base64, hex, rot13, zlib...: not character encodings
+    return info.name
 
 
 def charset_from_content_type(content_type: str | None) -> str | None:
@@ -80,4 +84,7 @@ def sniff_encoding(body: bytes, content_type: str | None = None) -> tuple[str, s
 def decode_text(body: bytes, content_type: str | None = None) -> tuple[str, str]:
     """Decode ``body`` to text; returns ``(text, codec)``. Bad bytes become U+FFFD."""
     codec, _how = sniff_encoding(body, content_type)
-    return body.decode(codec, errors="replace"), codec
+    try:
+        return body.decode(codec, errors="replace"), codec
+    except (LookupError, UnicodeError, ValueError):
+        return body.decode("cp1252", errors="replace"), "cp1252"

@@ -107,6 +107,9 @@ class Fetcher:
             except _Stop as stop:
                 return self._result(url, hops, started, stop.outcome, stop.detail,
                                     status=stop.status)
+            except Exception as exc:  # noqa: BLE001 - a fetch never raises: last resort
+                return self._result(url, hops, started, FetchOutcome.BAD_RESPONSE,
+                                    f"unexpected {type(exc).__name__}: {exc}"[:300])
 
     async def fetch_many(self, urls: Iterable[str], window: int | None = None
                          ) -> AsyncIterator[FetchResult]:
@@ -161,6 +164,8 @@ class Fetcher:
                 answers = await self.resolver.resolve(key.host, port)
             except ResolutionError as exc:
                 raise _Stop(FetchOutcome.DNS_ERROR, str(exc)) from None
+            except Exception as exc:  # noqa: BLE001 - an injected resolver may raise anything
+                raise _Stop(FetchOutcome.DNS_ERROR, f"resolver failed: {exc}"[:300]) from None
         refused = []
         for address in answers:
             decision = self.guard.check(address)
@@ -283,7 +288,7 @@ class Fetcher:
         raise _Stop(FetchOutcome.CONNECT_ERROR, last.detail if last else "failed")
 
     async def _robots_allowed(self, key: UrlKey, address: str) -> tuple[bool, str]:
-        origin = f"{key.scheme}://{key.host}" + (f":{key.port}" if key.port else "")
+        origin = key.url[: key.url.index("/", len(key.scheme) + 3)]  # brackets kept for IPv6
 
         async def load(origin_url: str) -> tuple[int | None, bytes, str]:
             # its own share of the deadline, so a stalling robots.txt is "unreachable"
@@ -313,7 +318,7 @@ class Fetcher:
                     if not location:
                         return None, b"", "redirect without Location"
                     hops_left -= 1
-                    current = self._check_url(urljoin(current.url, location))
+                    current = self._check_url(_join(current.url, location))
                     port = current.port or DEFAULT_PORTS[current.scheme]
                     current_address = await self._address(current, port)
                     continue
@@ -353,7 +358,7 @@ class Fetcher:
                 location = response.headers.get("location")
                 if not location:
                     raise _Stop(FetchOutcome.HTTP_ERROR, "redirect without Location", status)
-                current = urljoin(key.url, location)
+                current = _join(key.url, location)
                 continue
             if status >= 400:
                 raise _Stop(FetchOutcome.HTTP_ERROR, f"status {status}", status)
@@ -380,6 +385,13 @@ async def _raw(response: httpx.Response) -> AsyncIterator[bytes]:
         yield chunk
 
 
+def _join(base: str, location: str) -> str:
+    try:
+        return urljoin(base, location)
+    except ValueError as exc:  # a hostile Location such as "http://[::1"
+        raise _Stop(FetchOutcome.BAD_URL, f"bad redirect target: {exc}") from None
+
+
 def _looks_binary(body: bytes) -> bool:
     head = body[:4096]
     if head.startswith((b"\xff\xfe", b"\xfe\xff")):
@@ -392,7 +404,7 @@ def _retry_after(value: str | None) -> float | None:
     if not value:
         return None
     value = value.strip()
-    if value.isdigit():
+    if value.isascii() and value.isdigit():
         return float(value)
     try:
         when = email.utils.parsedate_to_datetime(value)

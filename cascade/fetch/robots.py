@@ -53,7 +53,15 @@ class RobotsCache:
                 return cached
         pending = self._pending.get(origin)
         if pending is not None:
-            return await asyncio.shield(pending)
+            try:
+                return await asyncio.shield(pending)
+            except asyncio.CancelledError:
+                task = asyncio.current_task()
+                if task is not None and task.cancelling():
+                    raise  # we were cancelled ourselves
+                # the loading fetch was cancelled (its own deadline): robots.txt unreachable
+                return RobotsRules("disallow-all", None, "robots.txt load was cut off",
+                                   time.monotonic())
         future: asyncio.Future[RobotsRules] = asyncio.get_running_loop().create_future()
         self._pending[origin] = future
         try:

@@ -333,6 +333,13 @@ class SiteFarm:
         if case == "brotli":
             return _Reply(200, [("Content-Type", "text/html"), ("Content-Encoding", "br")],
                           b"\x0b\x02\x80hello\x03")
+        if case == "bad-charset":  # a codec that is not a character encoding
+            return _Reply(200, [("Content-Type", "text/html; charset=base64")], b"<p>hi</p>")
+        if case == "bad-location":
+            return _Reply(302, [("Location", "http://[::1")])
+        if case == "odd-retry-after":
+            return _Reply(503, [("Content-Type", "text/html"), ("Retry-After", "\u00b2")],
+                          b"<p>busy</p>")
         if case == "set-cookie":
             return _Reply(200, [("Content-Type", "text/html"),
                                 ("Set-Cookie", "session=abc123; Path=/")], b"<p>cookie</p>")
