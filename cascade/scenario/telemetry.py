@@ -98,7 +98,7 @@ CATEGORY_WORDS: dict[str, tuple[str, ...]] = {
     ),
     "learning": (
         "academy", "school", "college", "course", "lesson", "tutor", "study", "learn",
-        "campus", "library", "scholar", "lecture", "class", "exam", "quiz", "textbook",
+        "campus", "library", "scholar", "tutorial", "class", "exam", "quiz", "textbook",
         "research", "thesis", "encyclopedia", "wiki", "reference", "faculty", "university",
         "seminar", "syllabus", "homework", "grammar", "maths", "science", "history", "atlas",
         "dictionary", "institute",
