@@ -91,7 +91,8 @@ def _load_taxonomy(path: str | None) -> Taxonomy | None:
     return load_taxonomy(path)
 
 
-def _load_labelled(args: argparse.Namespace, stats: ReadStats) -> tuple[
+def _load_labelled(args: argparse.Namespace, stats: ReadStats,
+                   extras: list[dict[str, str]] | None = None) -> tuple[
         list[UrlKey], list[str], list[int], list[str | None]]:
     keys, labels, counts, times = [], [], [], []
     progress = Progress(label="reading", enabled=None if not args.quiet else False)
@@ -105,6 +106,8 @@ def _load_labelled(args: argparse.Namespace, stats: ReadStats) -> tuple[
         labels.append(rec.label)
         counts.append(rec.count)
         times.append(rec.seen_at)
+        if extras is not None:
+            extras.append(rec.extra)
         progress.update()
     progress.close()
     return keys, labels, counts, times
@@ -116,9 +119,11 @@ def cmd_train(args: argparse.Namespace) -> int:
     from cascade.models.url_model import UrlModel
 
     stats = ReadStats()
-    keys, labels, counts, times = _load_labelled(args, stats)
+    extras: list[dict[str, str]] = []
+    keys, labels, counts, times = _load_labelled(args, stats, extras)
     if len(keys) < 2:
         raise CascadeError(f"{args.input}: fewer than two usable labelled rows")
+    pages = _read_pages(args, extras)
     taxonomy = _load_taxonomy(args.taxonomy)
     params = dict(ngram_range=(args.ngram_min, args.ngram_max), n_features=2**args.hash_bits,
                   use_tokens=not args.no_tokens, C=args.C, max_iter=args.max_iter,
@@ -138,6 +143,21 @@ def cmd_train(args: argparse.Namespace) -> int:
             metrics["split"] = split.describe()
             _eprint(f"train: held-out accuracy {metrics['accuracy']:.4f}, macro-F1 "
                     f"{metrics['macro_f1']:.4f}, ECE {metrics['ece_15']:.4f}")
+    n_pages = sum(p is not None for p in pages)
+    if n_pages:
+        from cascade.bundle import fit_bundle
+
+        _eprint(f"train: URL model on {len(keys)} rows, page model and fusion on "
+                f"{n_pages} pages (stacked, {args.folds} folds)")
+        url_params = {k: v for k, v in params.items() if k != "seed"}
+        bundle = fit_bundle(keys, labels, pages, taxonomy=taxonomy, url_params=url_params,
+                            folds=args.folds, seed=args.seed,
+                            progress=None if args.quiet else lambda m: _eprint(f"train: {m}"))
+        bundle.save(args.model, metrics=metrics)
+        return _finish(_summary(stats, model=str(args.model), version=bundle.version,
+                                classes=len(bundle.classes), pages=n_pages,
+                                stacking=bundle.report, metrics_held_out=bool(metrics)),
+                       stats, args.quiet)
     _eprint(f"train: fitting on {len(keys)} rows")
     model = UrlModel(**params).fit(keys, labels, taxonomy=taxonomy)
     model.save(args.model, metrics=metrics)
@@ -145,6 +165,42 @@ def cmd_train(args: argparse.Namespace) -> int:
                             classes=len(model.classes_), temperature=model.temperature_,
                             seconds=model.training_["seconds"], metrics_held_out=bool(metrics)),
                    stats, args.quiet)
+
+
+def _read_pages(args: argparse.Namespace, extras: list[dict[str, str]]) -> list[Any]:
+    """Each row's page: a ``page`` column naming a saved HTML file (under ``--pages``, else
+    beside the input; ``.gz`` ok) or a ``text`` column of page text; None where neither.
+    A page file that cannot be read is reported and the row trains the URL model only."""
+    import gzip
+
+    from cascade.extract import extract
+
+    base = Path(args.pages) if args.pages else Path(args.input).parent
+    pages: list[Any] = []
+    missing = 0
+    for extra in extras:
+        name, text = extra.get("page"), extra.get("text")
+        if name:
+            path = base / name
+            try:
+                raw = path.read_bytes()
+                if raw[:2] == b"\x1f\x8b":
+                    raw = gzip.decompress(raw)
+            except (OSError, EOFError, gzip.BadGzipFile) as exc:
+                missing += 1
+                if missing <= 5:
+                    _eprint(f"train: page {path} not used: {exc}")
+                pages.append(None)
+                continue
+            pages.append(extract(raw, content_type="text/html"))
+        elif text:
+            pages.append(extract(text, content_type="text/plain"))
+        else:
+            pages.append(None)
+    if missing:
+        _eprint(f"train: {missing} page files could not be read; those rows train the URL "
+                "model only")
+    return pages
 
 
 def cmd_score(args: argparse.Namespace) -> int:
@@ -177,6 +233,8 @@ def cmd_explain(args: argparse.Namespace) -> int:
     from cascade.models.url_model import UrlModel
 
     model = UrlModel.load(args.model)
+    if args.page:
+        return _explain_page(args)
     bad = 0
     for url in args.urls:
         try:
@@ -195,6 +253,57 @@ def cmd_explain(args: argparse.Namespace) -> int:
             for c in cls.contributions:
                 print(f"      {c.value:+.3f}  {c.kind:<5} {c.feature}")
     return EXIT_PARTIAL if bad else EXIT_OK
+
+
+def _print_explanation(exp: Any, title: str) -> None:
+    print(title)
+    for cls, rest in zip(exp.classes, exp.rest, strict=True):
+        print(f"  {cls.category:<14} p={cls.probability:.3f}  logit={cls.logit:+.3f}"
+              f"  (bias {cls.bias:+.3f}, other features {rest:+.3f})")
+        for c in cls.contributions:
+            print(f"      {c.value:+.3f}  {c.kind:<6} {c.feature}")
+
+
+def _explain_page(args: argparse.Namespace) -> int:
+    import gzip
+
+    import numpy as np
+
+    from cascade.bundle import ModelBundle
+    from cascade.extract import extract
+
+    if len(args.urls) != 1:
+        raise ValueError("--page explains one URL at a time")
+    bundle = ModelBundle.load(args.model)
+    if bundle.page_model is None or bundle.fusion is None:
+        raise CascadeError(f"{args.model}: no page model here (train with pages)")
+    try:
+        raw = Path(args.page).read_bytes()
+        if raw[:2] == b"\x1f\x8b":
+            raw = gzip.decompress(raw)
+    except (OSError, EOFError, gzip.BadGzipFile) as exc:
+        raise CascadeError(f"{args.page}: cannot read the page: {exc}") from None
+    url = normalize(args.urls[0])
+    page = extract(raw, url=url.url, content_type="text/html")
+    url_exp = bundle.url_model.explain(url, top=args.top, n_classes=args.classes)
+    page_exp = bundle.page_model.explain(page, top=args.top, n_classes=args.classes,
+                                         url=url.url)
+    pu = bundle.url_model.predict_proba_one(url)
+    pp = bundle.page_model.predict_proba([page])[0]
+    fused = bundle.fusion.combine(pu, pp, page.word_count)
+    best = int(np.argmax(fused.proba))
+    summary = {"url": url.url, "category": bundle.classes[best],
+               "confidence": round(float(fused.proba[best]), 6), "stage": fused.stage,
+               "reason": fused.reason, "page_words": page.word_count}
+    if args.json:
+        print(json.dumps({**summary, "url_model": url_exp.to_dict(),
+                          "page_model": page_exp.to_dict()}, ensure_ascii=False))
+        return EXIT_OK
+    print(f"{url.url}: {summary['category']} p={summary['confidence']:.3f} "
+          f"(stage {fused.stage}, {fused.reason}, {page.word_count} page words)")
+    _print_explanation(url_exp, "URL model:")
+    _print_explanation(page_exp, "page model:")
+    return EXIT_OK
 
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
@@ -220,10 +329,8 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     return _finish(_summary(stats, evaluated=len(keys)), stats, args.quiet)
 
 
-def cmd_fetch(args: argparse.Namespace) -> int:
-    import asyncio
-
-    from cascade.fetch import Fetcher, FetchPolicy, StaticResolver, SystemResolver
+def _fetch_setup(args: argparse.Namespace) -> tuple[Any, Any]:
+    from cascade.fetch import FetchPolicy, StaticResolver, SystemResolver
     from cascade.fetch.resolver import parse_resolve_overrides
 
     policy = FetchPolicy(
@@ -237,6 +344,15 @@ def cmd_fetch(args: argparse.Namespace) -> int:
     resolver = SystemResolver()
     if args.resolve:
         resolver = StaticResolver(parse_resolve_overrides(args.resolve), fallback=resolver)
+    return policy, resolver
+
+
+def cmd_fetch(args: argparse.Namespace) -> int:
+    import asyncio
+
+    from cascade.fetch import Fetcher
+
+    policy, resolver = _fetch_setup(args)
     stats = ReadStats()
     urls = [rec.url for rec in _input_records(args, stats)]
 
@@ -254,6 +370,39 @@ def cmd_fetch(args: argparse.Namespace) -> int:
 
     failed = asyncio.run(run())
     return _finish(_summary(stats, fetched=len(urls), not_ok=failed), stats, args.quiet)
+
+
+def cmd_refine(args: argparse.Namespace) -> int:
+    import asyncio
+
+    from cascade.bundle import ModelBundle, refine_verdict
+    from cascade.fetch import Fetcher
+
+    bundle = ModelBundle.load(args.model)
+    if bundle.page_model is None:
+        _eprint("refine: this model has no page model (train with pages); URL verdicts only")
+    policy, resolver = _fetch_setup(args)
+    stats = ReadStats()
+    keyed = list(_keyed_records(_input_records(args, stats), stats))
+
+    async def run() -> dict[str, int]:
+        counts: dict[str, int] = {}
+        async with Fetcher(policy, resolver) as fetcher:
+            with open_writer(args.output) as out:
+                async for result in fetcher.fetch_many([k.url for _, k in keyed]):
+                    verdict = refine_verdict(bundle, result.url, result, top_k=args.top)
+                    row = verdict.to_dict()
+                    row["fetch"] = {"outcome": str(result.outcome), "status": result.status,
+                                    "bytes_read": result.bytes_read,
+                                    "elapsed_ms": round(result.elapsed_ms, 1),
+                                    "detail": result.detail}
+                    out.write(row)
+                    counts[verdict.reason] = counts.get(verdict.reason, 0) + 1
+        return counts
+
+    counts = asyncio.run(run())
+    return _finish(_summary(stats, refined=sum(counts.values()), by_reason=counts,
+                            model_version=bundle.version), stats, args.quiet)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -275,6 +424,22 @@ def _add_input(p: argparse.ArgumentParser, required: bool = True) -> None:
                    help="override the format guessed from the name or first line")
 
 
+def _add_fetch_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--resolve", action="append", metavar="HOST:ADDRESS",
+                   help="answer HOST with ADDRESS instead of asking DNS (repeatable; the "
+                        "address guard still applies)")
+    p.add_argument("--allow-network", action="append", metavar="CIDR",
+                   help="open a hole in the address guard (repeatable; for tests only)")
+    p.add_argument("--port", action="append", type=int,
+                   help="allowed port (repeatable; default 80 and 443)")
+    p.add_argument("--deadline", type=float, default=10.0, help="seconds for a whole fetch")
+    p.add_argument("--max-bytes", type=int, default=2 << 20, help="bytes read off the wire")
+    p.add_argument("--max-redirects", type=int, default=5)
+    p.add_argument("--ignore-robots", action="store_true",
+                   help="do not obey robots.txt (only where your policy allows it)")
+    p.add_argument("--operator", help="contact (URL or mail) put in the User-Agent")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="cascade",
@@ -293,7 +458,8 @@ def build_parser() -> argparse.ArgumentParser:
                        help="no progress and no summary on stderr")
         return p
 
-    p = command("train", "Fit a URL model on a labelled file and save it to a directory.")
+    p = command("train", "Fit a URL model on a labelled file (and, for rows with a saved page, "
+                         "a page model and the fusion) and save it to a directory.")
     _add_input(p)
     p.add_argument("--model", "-m", required=True, help="model directory to write")
     p.add_argument("--taxonomy", "-t",
@@ -310,6 +476,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--C", type=float, default=20.0, help="inverse L2 strength")
     p.add_argument("--max-iter", type=int, default=150)
     p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--pages", help="folder of saved pages named by the input's 'page' column "
+                                   "(default: the input file's folder)")
+    p.add_argument("--folds", type=int, default=4,
+                   help="folds for stacking the page model and fusion (default 4)")
     p.set_defaults(func=cmd_train)
 
     p = command("score", "Score URLs with a URL model; writes one verdict per URL.")
@@ -324,8 +494,11 @@ def build_parser() -> argparse.ArgumentParser:
                    help="mark needs_fetch when confidence is under this (default 0.8)")
     p.set_defaults(func=cmd_score)
 
-    p = command("explain", "Show which URL substrings drove a verdict (exact, per class).")
+    p = command("explain", "Show which URL substrings (and, with --page, which page words) "
+                           "drove a verdict (exact, per class).")
     p.add_argument("urls", nargs="+")
+    p.add_argument("--page", help="a saved HTML page of the (single) URL: also explain the "
+                                  "page model's verdict and show the fused one")
     p.add_argument("--model", "-m", required=True)
     p.add_argument("--top", type=int, default=8, help="features shown per class")
     p.add_argument("--classes", type=int, default=2, help="most probable classes shown")
@@ -343,23 +516,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("urls", nargs="*", help="URLs to fetch (instead of --input)")
     _add_input(p, required=False)
     p.add_argument("--output", "-o", default="-")
-    p.add_argument("--resolve", action="append", metavar="HOST:ADDRESS",
-                   help="answer HOST with ADDRESS instead of asking DNS (repeatable; the "
-                        "address guard still applies)")
-    p.add_argument("--allow-network", action="append", metavar="CIDR",
-                   help="open a hole in the address guard (repeatable; for tests only)")
-    p.add_argument("--port", action="append", type=int,
-                   help="allowed port (repeatable; default 80 and 443)")
-    p.add_argument("--deadline", type=float, default=10.0, help="seconds for a whole fetch")
-    p.add_argument("--max-bytes", type=int, default=2 << 20, help="bytes read off the wire")
-    p.add_argument("--max-redirects", type=int, default=5)
-    p.add_argument("--ignore-robots", action="store_true",
-                   help="do not obey robots.txt (only where your policy allows it)")
-    p.add_argument("--operator", help="contact (URL or mail) put in the User-Agent")
+    _add_fetch_options(p)
     p.add_argument("--text-chars", type=int, default=2000,
                    help="characters of page text kept in the output (default 2000)")
     p.add_argument("--full-text", action="store_true", help="keep the whole page text")
     p.set_defaults(func=cmd_fetch)
+
+    p = command("refine", "Fetch URLs through the sandboxed fetcher and print fused "
+                          "verdicts (URL model + page model); failures keep the URL verdict.")
+    p.add_argument("urls", nargs="*", help="URLs to refine (instead of --input)")
+    _add_input(p, required=False)
+    p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
+    p.add_argument("--output", "-o", default="-")
+    p.add_argument("--top", type=int, default=3, help="best categories kept per URL")
+    _add_fetch_options(p)
+    p.set_defaults(func=cmd_refine)
 
     p = command("demo", "Run the whole job on the invented demo scenario into a folder.")
     p.add_argument("--out", default="demo-output", help="report folder (default demo-output)")

@@ -20,12 +20,14 @@ import scipy.sparse as sp
 from cascade import __version__
 from cascade.errors import InvalidURL, ModelFileError, NotFittedError, TaxonomyError
 from cascade.models.calibration import fit_temperature, softmax
+from cascade.models.folds import group_folds
 from cascade.models.hashing import (
     char_ngram_hashes,
     char_ngram_hashes_one,
     columns,
     token_hashes,
 )
+from cascade.models.linear import compact_table, pack_rows, unpack_rows
 from cascade.models.model_files import data_digest, load_model_dir, save_model_dir
 from cascade.models.softmax import fit_softmax
 from cascade.taxonomy import Taxonomy
@@ -258,16 +260,8 @@ class UrlModel:
     def _calibration_folds(self, keys: Sequence[UrlKey]) -> np.ndarray:
         """Fold number per row: whole registered domains to a fold, by a seeded shuffle.
         All rows are -1 (no calibration) with fewer than 2 folds or too few rows."""
-        n = len(keys)
-        if self.calibration_folds < 2 or n < 50:
-            return np.full(n, -1)
-        groups = [k.registered_domain or k.host for k in keys]
-        uniq = sorted(set(groups))
-        if len(uniq) < self.calibration_folds:
-            return np.full(n, -1)
-        order = np.random.default_rng(self.seed).permutation(len(uniq))
-        fold_of = {uniq[j]: i % self.calibration_folds for i, j in enumerate(order)}
-        return np.array([fold_of[g] for g in groups])
+        return group_folds([k.registered_domain or k.host for k in keys],
+                           self.calibration_folds, self.seed)
 
     # ------------------------------------------------------------------ scoring
     def _check_fitted(self) -> None:
@@ -285,16 +279,11 @@ class UrlModel:
             self.temperature_
 
     def _compact_weights(self) -> tuple[np.ndarray, np.ndarray]:
-        """The non-zero weight rows packed together (row 0 all zeros) and a column-to-row
-        map: the table then fits in a CPU cache, which makes each lookup's gather fast."""
+        """The packed weight table (see ``compact_table``), cached per weight array."""
         cached = getattr(self, "_compact", None)
         if cached is not None and cached[2] is self.weights_:
             return cached[0], cached[1]
-        nonzero = np.flatnonzero(np.any(self.weights_ != 0, axis=1))
-        row_of = np.zeros(self.n_features, dtype=np.int32)
-        row_of[nonzero] = np.arange(1, len(nonzero) + 1, dtype=np.int32)
-        compact = np.vstack([np.zeros((1, self.weights_.shape[1]), np.float32),
-                             self.weights_[nonzero]])
+        row_of, compact = compact_table(self.weights_)
         self._compact = (row_of, compact, self.weights_)
         return row_of, compact
 
@@ -387,7 +376,6 @@ class UrlModel:
     def save(self, path: str | Path, metrics: dict[str, Any] | None = None) -> Path:
         """Write ``model.json`` + ``weights.npz`` (non-zero rows only) to directory ``path``."""
         self._check_fitted()
-        nonzero = np.flatnonzero(np.any(self.weights_ != 0, axis=1)).astype(np.int64)
         meta = {
             "cascade_version": __version__,
             "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
@@ -398,11 +386,7 @@ class UrlModel:
             "training": self.training_,
             "metrics": metrics or {},
         }
-        arrays = {
-            "rows": nonzero,
-            "weights": self.weights_[nonzero],
-            "intercept": self.intercept_.astype(np.float64),
-        }
+        arrays = {**pack_rows(self.weights_), "intercept": self.intercept_.astype(np.float64)}
         target = save_model_dir(path, KIND, meta, arrays)
         self.version_ = "url-" + load_model_dir(target, KIND)[0]["content_sha256"][:12]
         self.metrics_ = metrics or {}
@@ -422,13 +406,10 @@ class UrlModel:
             model = cls(**{**params, "ngram_range": tuple(params["ngram_range"])})
             model._check_params()
             classes = [str(c) for c in meta["classes"]]
-            rows, weights, intercept = arrays["rows"], arrays["weights"], arrays["intercept"]
-            if weights.shape != (rows.shape[0], len(classes)) or intercept.shape != (len(classes),):
+            intercept = arrays["intercept"]
+            if intercept.shape != (len(classes),):
                 raise ModelFileError(f"{path}: array shapes do not match the class list")
-            if rows.size and (rows.min() < 0 or rows.max() >= model.n_features):
-                raise ModelFileError(f"{path}: weight rows fall outside n_features")
-            W = np.zeros((model.n_features, len(classes)), dtype=np.float32)
-            W[rows] = weights
+            W = unpack_rows(arrays, model.n_features, len(classes), str(path))
             model.classes_ = classes
             model.taxonomy_ = Taxonomy.from_dict(meta["taxonomy"])
             model.weights_ = W

@@ -1,0 +1,74 @@
+"""``cascade train`` with saved pages, ``cascade refine`` against the loopback site farm, and
+``cascade explain --page``."""
+
+from __future__ import annotations
+
+import csv
+import json
+from pathlib import Path
+
+import pytest
+
+from cascade.cli import EXIT_OK, main
+from cascade.scenario import generate_telemetry
+from cascade.scenario.pages import render_page
+from cascade.scenario.site_farm import SiteFarm
+from cascade.urls import normalize
+
+
+@pytest.fixture(scope="module")
+def trained(tmp_path_factory: pytest.TempPathFactory):
+    root = tmp_path_factory.mktemp("pages")
+    records = generate_telemetry(seed=5, n_sites=120)[:600]
+    (root / "saved").mkdir()
+    with (root / "train.csv").open("w", newline="") as fh:
+        out = csv.writer(fh)
+        out.writerow(["url", "label", "page"])
+        for i, r in enumerate(records):
+            name = f"p{i}.html"
+            if i % 5:  # every fifth row has no saved page: it trains the URL model only
+                (root / "saved" / name).write_text(render_page(r.url, r.label, r.page_seed))
+                out.writerow([r.url, r.label, name])
+            else:
+                out.writerow([r.url, r.label, ""])
+    code = main(["--quiet", "train", "-i", str(root / "train.csv"), "-m", str(root / "model"),
+                 "--pages", str(root / "saved"), "--hash-bits", "16", "--max-iter", "40",
+                 "--holdout", "0", "--folds", "3"])
+    assert code == EXIT_OK
+    return root, records
+
+
+def test_train_with_pages_writes_page_model_and_fusion(trained) -> None:
+    root, _ = trained
+    assert (root / "model" / "page" / "model.json").is_file()
+    assert (root / "model" / "fusion" / "model.json").is_file()
+
+
+def test_refine_fuses_fetched_pages_and_keeps_url_verdict_on_refusal(trained, capsys) -> None:
+    root, records = trained
+    with SiteFarm(records) as farm:
+        host = normalize(records[1].url).host
+        path = normalize(records[1].url).path
+        good = farm.url(host, path)
+        refused = farm.url("inside.test", "/")
+        code = main(["--quiet", "refine", "-m", str(root / "model"),
+                     "--resolve", f"{host}:127.0.0.1", "--resolve", "inside.test:10.1.2.3",
+                     "--allow-network", "127.0.0.1/32", "--port", str(farm.port),
+                     "--deadline", "3", "--ignore-robots", good, refused])
+    assert code == EXIT_OK
+    rows = {r["url"]: r for r in map(json.loads, capsys.readouterr().out.splitlines())}
+    assert rows[normalize(good).url]["stage"] == "page"
+    assert rows[normalize(good).url]["fetch"]["outcome"] == "ok"
+    # 10.0.0.0/8 is private use (RFC 1918): never fetched, the URL verdict stays
+    assert rows[normalize(refused).url]["stage"] == "url"
+    assert rows[normalize(refused).url]["reason"] == "fetch:blocked-address"
+
+
+def test_explain_with_page_shows_page_words(trained, capsys) -> None:
+    root, records = trained
+    page = root / "saved" / "p1.html"
+    code = main(["explain", "-m", str(root / "model"), "--page", str(page), records[1].url])
+    assert code == EXIT_OK
+    out = capsys.readouterr().out
+    assert "page model:" in out and "URL model:" in out
+    assert "body:" in out or "title:" in out
