@@ -27,6 +27,7 @@ from cascade.fuse import Fusion
 from cascade.models.calibration import fit_temperature, softmax
 from cascade.models.folds import group_folds
 from cascade.models.page_model import PageModel, as_pages
+from cascade.models.text_features import page_word_count
 from cascade.models.url_model import UrlModel, as_keys
 from cascade.taxonomy import Taxonomy
 from cascade.urls import UrlKey
@@ -163,7 +164,7 @@ def fit_bundle(
     page_t = fit_temperature(page_logits[both], y[both]) if both.any() else 1.0
     pu = softmax(url_logits[both] / url_t)
     pp = softmax(page_logits[both] / page_t)
-    words = np.array([page_of[int(i)].word_count for i in np.flatnonzero(both)])
+    words = np.array([page_word_count(page_of[int(i)]) for i in np.flatnonzero(both)])
     say(f"fusion on {int(both.sum())} out-of-fold rows")
     fusion = Fusion(**(fusion_params or {})).fit(pu, pp, y[both], words)
     fused = fusion.predict_proba(pu, pp, words)
@@ -206,7 +207,7 @@ def refine_verdict(bundle: ModelBundle, url: str | UrlKey, result: Any | None,
     else:
         page = extract_fetch(result)
         pp = bundle.page_model.predict_proba([page])[0] if result.ok else None
-        fused = bundle.fusion.combine(pu, pp, page.word_count, fetch_outcome=outcome)
+        fused = bundle.fusion.combine(pu, pp, page_word_count(page), fetch_outcome=outcome)
         row_proba, stage, reason = fused.proba, fused.stage, fused.reason
     order = np.argsort(-row_proba)[: min(top_k, len(bundle.classes))]
     return Verdict(url=key.url, category=bundle.classes[order[0]],

@@ -271,6 +271,7 @@ def _explain_page(args: argparse.Namespace) -> int:
 
     from cascade.bundle import ModelBundle
     from cascade.extract import extract
+    from cascade.models.text_features import page_word_count
 
     if len(args.urls) != 1:
         raise ValueError("--page explains one URL at a time")
@@ -290,17 +291,18 @@ def _explain_page(args: argparse.Namespace) -> int:
                                          url=url.url)
     pu = bundle.url_model.predict_proba_one(url)
     pp = bundle.page_model.predict_proba([page])[0]
-    fused = bundle.fusion.combine(pu, pp, page.word_count)
+    words = page_word_count(page)
+    fused = bundle.fusion.combine(pu, pp, words)
     best = int(np.argmax(fused.proba))
     summary = {"url": url.url, "category": bundle.classes[best],
                "confidence": round(float(fused.proba[best]), 6), "stage": fused.stage,
-               "reason": fused.reason, "page_words": page.word_count}
+               "reason": fused.reason, "page_words": words}
     if args.json:
         print(json.dumps({**summary, "url_model": url_exp.to_dict(),
                           "page_model": page_exp.to_dict()}, ensure_ascii=False))
         return EXIT_OK
     print(f"{url.url}: {summary['category']} p={summary['confidence']:.3f} "
-          f"(stage {fused.stage}, {fused.reason}, {page.word_count} page words)")
+          f"(stage {fused.stage}, {fused.reason}, {words} page words)")
     _print_explanation(url_exp, "URL model:")
     _print_explanation(page_exp, "page model:")
     return EXIT_OK

@@ -66,16 +66,20 @@ class Fusion:
 
     Parameters
     ----------
-    min_page_words : pages with fewer words keep the URL verdict (reason ``page:thin``).
+    min_page_words : pages with fewer words, over all fields the page model reads, keep
+        the URL verdict (reason ``page:thin``).
     alpha : strength of the L2 pull towards the plain product of the two models.
     max_iter : L-BFGS iterations.
+    class_terms : learn the per-class terms ``u``, ``v``, ``bias``; off, only the gates are
+        learned, which is more robust when the deployed label mix differs from training.
     """
 
-    def __init__(self, min_page_words: int = 15, alpha: float = 1e-3, max_iter: int = 500
-                 ) -> None:
+    def __init__(self, min_page_words: int = 5, alpha: float = 0.1, max_iter: int = 500,
+                 class_terms: bool = True) -> None:
         self.min_page_words = min_page_words
         self.alpha = alpha
         self.max_iter = max_iter
+        self.class_terms = class_terms
 
     def _unpack(self, theta: np.ndarray, k: int) -> tuple[np.ndarray, ...]:
         g = len(GATE_SIGNALS)
@@ -129,7 +133,10 @@ class Fusion:
             grad = np.concatenate([G.T @ DLu.sum(axis=1), G.T @ DLp.sum(axis=1),
                                    DLu.sum(axis=0), DLp.sum(axis=0), D.sum(axis=0)])
             diff = theta - theta0
-            return loss + 0.5 * alpha * float(diff @ diff), grad + alpha * diff
+            grad = grad + alpha * diff
+            if not self.class_terms:
+                grad[2 * g:] = 0.0
+            return loss + 0.5 * alpha * float(diff @ diff), grad
 
         started = time.perf_counter()
         result = minimize(objective, theta0, jac=True, method="L-BFGS-B",
@@ -219,7 +226,7 @@ class Fusion:
 
     def get_params(self) -> dict[str, Any]:
         return {"min_page_words": self.min_page_words, "alpha": self.alpha,
-                "max_iter": self.max_iter}
+                "max_iter": self.max_iter, "class_terms": self.class_terms}
 
     def __repr__(self) -> str:
         return "Fusion(" + ", ".join(f"{k}={v!r}" for k, v in self.get_params().items()) + ")"

@@ -118,3 +118,11 @@ def field_names(field_name: str, tokens: Sequence[str], bigrams: bool) -> list[s
         names.extend(f"{field_name}:{a} {b}" for a, b in zip(tokens[:-1], tokens[1:],
                                                                strict=True))
     return names
+
+
+def page_word_count(page: PageLike, settings: TextSettings | None = None) -> int:
+    """Words the page model reads across all fields (title, description, headings, body,
+    anchors): the measure of whether a page says enough to be fused. A page with a thin body
+    can still carry its category in its title and links."""
+    per_field = field_words(page, settings or TextSettings())
+    return sum(len(w) for f, w in per_field if f != "link")
