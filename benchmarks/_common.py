@@ -47,3 +47,15 @@ def write_json(result: dict, path: str | None) -> None:
     print(text)
     if path:
         Path(path).write_text(text + "\n", encoding="utf-8")
+
+
+def run_child(script: str, *args: str, timeout: float = 1800) -> dict:
+    """Run ``script`` in a fresh Python process (its own peak RSS, no shared caches) and
+    return the JSON object on the last line it prints."""
+    import subprocess
+
+    proc = subprocess.run([sys.executable, script, *args], capture_output=True, text=True,
+                          timeout=timeout, check=False)
+    if proc.returncode != 0:
+        raise SystemExit(f"child {args} failed:\n{proc.stderr[-3000:]}")
+    return json.loads(proc.stdout.strip().splitlines()[-1])

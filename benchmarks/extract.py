@@ -30,14 +30,13 @@ import random
 import re
 import resource
 import statistics
-import subprocess
 import sys
 import time
 from collections import Counter
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import SHARED_DATA, machine, write_json  # noqa: E402
+from _common import SHARED_DATA, machine, run_child, write_json  # noqa: E402
 
 ARTICLES = SHARED_DATA / "article-pages"
 UNIVERSITY = SHARED_DATA / "university-pages" / "pages.jsonl.gz"
@@ -206,11 +205,7 @@ def role_run(name: str, repeats: int, sample: int, seed: int) -> dict:
 
 
 def _child(*args: str) -> dict:
-    proc = subprocess.run([sys.executable, __file__, *args], capture_output=True, text=True,
-                          timeout=3600, check=False)
-    if proc.returncode != 0:
-        raise SystemExit(f"child {args} failed:\n{proc.stderr[-3000:]}")
-    return json.loads(proc.stdout.strip().splitlines()[-1])
+    return run_child(__file__, *args, timeout=3600)
 
 
 def main() -> None:

@@ -22,7 +22,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import machine, write_json  # noqa: E402
+from _common import machine, run_child, write_json  # noqa: E402
 
 
 def _urls(count: int) -> list[tuple[str, str]]:
@@ -132,11 +132,7 @@ def role_peer(port: int, count: int, concurrency: int) -> dict:
 
 
 def _child(*args: str) -> dict:
-    proc = subprocess.run([sys.executable, __file__, *args], capture_output=True, text=True,
-                          timeout=1800, check=False)
-    if proc.returncode != 0:
-        raise SystemExit(f"child {args} failed:\n{proc.stderr[-3000:]}")
-    return json.loads(proc.stdout.strip().splitlines()[-1])
+    return run_child(__file__, *args, timeout=1800)
 
 
 def main() -> None:
