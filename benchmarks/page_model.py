@@ -43,7 +43,7 @@ def _scores(name: str, proba: np.ndarray, y: np.ndarray) -> dict:
 
 
 def _three_way(train_urls, train_labels, train_pages, test_urls, test_labels, test_pages,
-               folds: int, seed: int) -> dict:
+               folds: int, seed: int, arrays: Path | None = None) -> dict:
     started = time.perf_counter()
     bundle = fit_bundle(train_urls, train_labels, train_pages, folds=folds, seed=seed)
     fit_s = time.perf_counter() - started
@@ -60,6 +60,8 @@ def _three_way(train_urls, train_labels, train_pages, test_urls, test_labels, te
     words = np.array([page_word_count(p) for p in test_pages])
     pf = bundle.fusion.predict_proba(pu, pp, words)
     right_url, right_fused = pu.argmax(1) == y, pf.argmax(1) == y
+    if arrays is not None:
+        _save_arrays(arrays, bundle, train_urls, test_urls, y, pu, pp, pf, words)
     return {"train_rows": len(train_urls), "test_rows": len(test_urls),
             "url_only": _scores("url", pu, y), "page_only": _scores("page", pp, y),
             "fused": _scores("fused", pf, y),
@@ -73,7 +75,28 @@ def _three_way(train_urls, train_labels, train_pages, test_urls, test_labels, te
             "_arrays": (pu, pp, pf, y), "_t": time.perf_counter() - t0}
 
 
-def webkb(folds: int, seed: int) -> dict:
+def _save_arrays(path: Path, bundle, train_urls, test_urls, y, pu, pp, pf, words) -> None:
+    """Keep what the budget benchmark needs: both models' probabilities on the held-out
+    rows and on the stacking (out-of-fold) rows, and each row's URL and registered domain."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    ho = bundle.held_out
+    train_keys = [normalize(u) if isinstance(u, str) else u for u in train_urls]
+    test_keys = [normalize(u) if isinstance(u, str) else u for u in test_urls]
+    oof_keys = [train_keys[int(i)] for i in ho["rows"]]
+    np.savez_compressed(
+        path, classes=np.array(bundle.classes), y=y, url_proba=pu, page_proba=pp,
+        fused_proba=pf, page_words=words,
+        url=np.array([k.url for k in test_keys]),
+        domain=np.array([k.registered_domain or k.host for k in test_keys]),
+        oof_y=ho["y"], oof_url_proba=ho["url_proba"], oof_page_proba=ho["page_proba"],
+        oof_page_words=ho["page_words"],
+        oof_fused_proba=bundle.fusion.predict_proba(ho["url_proba"], ho["page_proba"],
+                                                    ho["page_words"]),
+        oof_url=np.array([k.url for k in oof_keys]),
+        oof_domain=np.array([k.registered_domain or k.host for k in oof_keys]))
+
+
+def webkb(folds: int, seed: int, arrays: Path | None = None) -> dict:
     path = SHARED_DATA / "university-pages" / "pages.jsonl.gz"
     if not path.exists():
         return {"skipped": f"{path} not found"}
@@ -98,7 +121,8 @@ def webkb(folds: int, seed: int) -> dict:
         te = [i for i, r in enumerate(rows) if r["university"] == held]
         res = _three_way([rows[i]["url"] for i in tr], [rows[i]["label"] for i in tr],
                          [pages[i] for i in tr], [rows[i]["url"] for i in te],
-                         [rows[i]["label"] for i in te], [pages[i] for i in te], folds, seed)
+                         [rows[i]["label"] for i in te], [pages[i] for i in te], folds, seed,
+                         arrays / f"webkb-{held}.npz" if arrays else None)
         pu, pp, pf, y = res.pop("_arrays")
         res.pop("_t")
         for key, arr in (("url", pu), ("page", pp), ("fused", pf), ("y", y)):
@@ -160,7 +184,7 @@ def newsgroups(seed: int) -> dict:
                        "pages_per_s": round(ours["pages_per_s"] / peer["pages_per_s"], 3)}}
 
 
-def demo(folds: int, seed: int) -> dict:
+def demo(folds: int, seed: int, arrays: Path | None = None) -> dict:
     from cascade.evaluate import evaluation_split
     from cascade.scenario import generate_telemetry
     from cascade.scenario.pages import render_page
@@ -172,7 +196,7 @@ def demo(folds: int, seed: int) -> dict:
     res = _three_way([keys[i] for i in split.train], [records[i].label for i in split.train],
                      [pages[i] for i in split.train], [keys[i] for i in split.test],
                      [records[i].label for i in split.test], [pages[i] for i in split.test],
-                     folds, seed)
+                     folds, seed, arrays / "demo.npz" if arrays else None)
     res.pop("_arrays")
     res.pop("_t")
     res["split"] = split.describe()
@@ -185,13 +209,15 @@ def main() -> None:
     ap.add_argument("--datasets", default="webkb,news,demo")
     ap.add_argument("--folds", type=int, default=4)
     ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--arrays", type=Path,
+                    help="save per-split probabilities here (.npz) for benchmarks/budget.py")
     args = ap.parse_args()
     wanted = set(args.datasets.split(","))
     out: dict = {"benchmark": "page_model", "machine": machine()}
     if "demo" in wanted:
-        out["demo"] = demo(args.folds, args.seed)
+        out["demo"] = demo(args.folds, args.seed, args.arrays)
     if "webkb" in wanted:
-        out["webkb"] = webkb(args.folds, args.seed)
+        out["webkb"] = webkb(args.folds, args.seed, args.arrays)
     if "news" in wanted:
         out["newsgroups"] = newsgroups(args.seed)
     out["peak_rss_mb"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)

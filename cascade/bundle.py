@@ -9,7 +9,8 @@ model was fitted on, which would teach it to trust the models too much.
 
 Directory layout: the URL model's files at the top (so every URL-only command reads the same
 directory), ``page/`` and ``fusion/`` beside them when pages were given. The fusion records
-the versions of the two models it was fitted with and is refused beside any others.
+the versions of the two models it was fitted with and is refused beside any others; so does
+the fetch planner's cost model in ``cost/``, fitted on the same out-of-fold rows.
 """
 
 from __future__ import annotations
@@ -22,6 +23,7 @@ from typing import Any
 
 import numpy as np
 
+from cascade.budget import CostModel
 from cascade.errors import ModelFileError
 from cascade.fuse import Fusion
 from cascade.models.calibration import fit_temperature, softmax
@@ -35,6 +37,7 @@ from cascade.verdict import Verdict
 
 PAGE_DIR = "page"
 FUSION_DIR = "fusion"
+COST_DIR = "cost"
 
 
 @dataclass
@@ -47,7 +50,9 @@ class ModelBundle:
     report: dict[str, Any] | None = None
     held_out: dict[str, np.ndarray] | None = None
     """Out-of-fold predictions from training (``rows``, ``y``, ``url_proba``, ``page_proba``,
-    ``page_words``): what the fetch planner's cost model learns from. Not saved."""
+    ``page_words``, ``fused_proba``): what the fetch planner's cost model learns from.
+    Not saved."""
+    cost_model: CostModel | None = None
 
     @property
     def classes(self) -> list[str]:
@@ -67,6 +72,8 @@ class ModelBundle:
             self.fusion.save(target / FUSION_DIR, links={"url": self.url_model.version,
                                                          "page": self.page_model.version},
                              metrics=self.report or {})
+            if self.cost_model is not None:
+                self.cost_model.save(target / COST_DIR, links={"bundle": self.version})
         return target
 
     @classmethod
@@ -84,7 +91,14 @@ class ModelBundle:
                                  f"directory holds {expected}; retrain the bundle")
         if page_model.classes_ != url_model.classes_:
             raise ModelFileError(f"{root}: the page and URL models have different classes")
-        return cls(url_model, page_model, fusion)
+        bundle = cls(url_model, page_model, fusion)
+        if (root / COST_DIR).is_dir():
+            cost_model, cost_links = CostModel.load(root / COST_DIR)
+            if cost_links != {"bundle": bundle.version}:
+                raise ModelFileError(f"{root / COST_DIR}: fitted with models {cost_links}, but "
+                                     f"the directory holds {bundle.version}; retrain the bundle")
+            bundle.cost_model = cost_model
+        return bundle
 
 
 def fit_bundle(
@@ -186,9 +200,15 @@ def fit_bundle(
     page_model.training_["calibration"] = (f"temperature fitted on out-of-fold logits, "
                                            f"{folds} folds grouped by registered domain")
     report["seconds"] = round(time.perf_counter() - started, 3)
-    held_out = {"rows": np.flatnonzero(both), "y": y[both], "url_proba": pu,
-                "page_proba": pp, "page_words": words}
-    return ModelBundle(url_model, page_model, fusion, report=report, held_out=held_out)
+    rows = np.flatnonzero(both)
+    held_out = {"rows": rows, "y": y[both], "url_proba": pu, "page_proba": pp,
+                "page_words": words, "fused_proba": fused}
+    say(f"cost model on {int(both.sum())} out-of-fold rows")
+    cost_model = CostModel(seed=seed).fit(pu, fused, y[both], costs=taxonomy.costs(),
+                                          domains=[group_list[int(i)] for i in rows])
+    report["cost_model"] = cost_model.training_
+    return ModelBundle(url_model, page_model, fusion, report=report, held_out=held_out,
+                       cost_model=cost_model)
 
 
 def refine_verdict(bundle: ModelBundle, url: str | UrlKey, result: Any | None,

@@ -167,7 +167,8 @@ def cmd_train(args: argparse.Namespace) -> int:
                    stats, args.quiet)
 
 
-def _read_pages(args: argparse.Namespace, extras: list[dict[str, str]]) -> list[Any]:
+def _read_pages(args: argparse.Namespace, extras: list[dict[str, str]],
+                who: str = "train") -> list[Any]:
     """Each row's page: a ``page`` column naming a saved HTML file (under ``--pages``, else
     beside the input; ``.gz`` ok) or a ``text`` column of page text; None where neither.
     A page file that cannot be read is reported and the row trains the URL model only."""
@@ -189,7 +190,7 @@ def _read_pages(args: argparse.Namespace, extras: list[dict[str, str]]) -> list[
             except (OSError, EOFError, gzip.BadGzipFile) as exc:
                 missing += 1
                 if missing <= 5:
-                    _eprint(f"train: page {path} not used: {exc}")
+                    _eprint(f"{who}: page {path} not used: {exc}")
                 pages.append(None)
                 continue
             pages.append(extract(raw, content_type="text/html"))
@@ -198,7 +199,7 @@ def _read_pages(args: argparse.Namespace, extras: list[dict[str, str]]) -> list[
         else:
             pages.append(None)
     if missing:
-        _eprint(f"train: {missing} page files could not be read; those rows train the URL "
+        _eprint(f"{who}: {missing} page files could not be read; those rows use the URL "
                 "model only")
     return pages
 
@@ -407,6 +408,120 @@ def cmd_refine(args: argparse.Namespace) -> int:
                             model_version=bundle.version), stats, args.quiet)
 
 
+def _budget(args: argparse.Namespace) -> Any:
+    from cascade.budget import Budget
+
+    return Budget.parse(args.budget, args.budget_bytes, args.budget_seconds)
+
+
+def _fetch_costs(path: str | None) -> Any:
+    from cascade.budget import FetchCosts
+
+    if not path:
+        return None
+    rows = []
+    stats = ReadStats()
+    for rec in read_records(path, fmt="jsonl" if path.endswith((".jsonl", ".jsonl.gz"))
+                            else None, stats=stats):
+        extra = rec.extra
+        try:
+            key = normalize(rec.url)
+        except InvalidURL:
+            continue
+        rows.append({"domain": key.registered_domain or key.host,
+                     "ok": str(extra.get("outcome", "ok")) == "ok",
+                     "bytes": float(extra.get("bytes_read") or extra.get("bytes") or 0),
+                     "ms": float(extra.get("elapsed_ms") or extra.get("ms") or 0)})
+    return FetchCosts.from_history(rows)
+
+
+def cmd_plan(args: argparse.Namespace) -> int:
+    from cascade.budget import plan
+    from cascade.bundle import ModelBundle
+
+    bundle = ModelBundle.load(args.model)
+    budget = _budget(args)
+    stats = ReadStats()
+    keyed = list(_keyed_records(_input_records(args, stats), stats))
+    if bundle.cost_model is None:
+        _eprint("plan: this model has no cost model (train with pages); ranking by "
+                "the URL model's confidence, weighted by lookups")
+    keys = [k for _, k in keyed]
+    proba = bundle.url_model.predict_proba(keys) if keys else None
+    result = plan([k.url for k in keys], proba, bundle.cost_model, budget,
+                  counts=[rec.count for rec, _ in keyed],
+                  domains=[k.registered_domain or k.host for k in keys],
+                  fetch_costs=_fetch_costs(args.fetch_history), min_gain=args.min_gain)
+    by_reason: dict[str, int] = {}
+    with open_writer(args.output) as out:
+        for item in result.fetch:
+            out.write(item.to_dict())
+        for item in result.skipped:
+            by_reason[item.reason] = by_reason.get(item.reason, 0) + 1
+            if args.all:
+                out.write(item.to_dict())
+    return _finish(_summary(stats, budget=budget.describe(), **result.totals,
+                            left_out=by_reason, model_version=bundle.version), stats,
+                   args.quiet)
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    import numpy as np
+
+    from cascade.budget import confidence_gain
+    from cascade.bundle import ModelBundle
+    from cascade.models.text_features import page_word_count
+    from cascade.report import build_report, write_report
+
+    bundle = ModelBundle.load(args.model)
+    stats = ReadStats()
+    extras: list[dict[str, str]] = []
+    keys, labels, counts, _times = _load_labelled(args, stats, extras)
+    if not keys:
+        raise CascadeError(f"{args.input}: no usable labelled rows")
+    classes = bundle.classes
+    unknown = sorted({lab for lab in labels if lab not in classes})
+    if unknown:
+        raise CascadeError(f"{args.input}: labels not among the model's categories: "
+                           f"{unknown[:10]}")
+    y = np.array([classes.index(lab) for lab in labels])
+    pu = bundle.url_model.predict_proba(keys)
+    pf = pu.copy()
+    pages = _read_pages(args, extras, who="report")
+    rows = [i for i, p in enumerate(pages) if p is not None]
+    if bundle.page_model is not None and rows:
+        pp = bundle.page_model.predict_proba([pages[i] for i in rows])
+        words = np.array([page_word_count(pages[i]) for i in rows])
+        pf[rows] = bundle.fusion.predict_proba(pu[rows], pp, words)
+    else:
+        _eprint("report: no pages (or no page model): every fetch keeps the URL verdict")
+    if bundle.cost_model is not None:
+        gain = bundle.cost_model.expected_gain(
+            pu, [k.registered_domain or k.host for k in keys])["gain"]
+        planner = "cost model"
+    else:
+        gain = confidence_gain(pu, np.ones(len(classes)))["gain"]
+        planner = "confidence (no cost model)"
+    weighted = any(c != 1 for c in counts)
+    taxonomy = bundle.url_model.taxonomy_
+    costs = np.array([taxonomy.categories[taxonomy.index(c)].cost for c in classes])
+    rep = build_report(y, pu, pf, gain, classes, costs=costs,
+                       counts=counts if weighted else None,
+                       operating_budget=args.operating_budget,
+                       precision_target=args.precision_target, seeds=args.seeds,
+                       title=args.title,
+                       context={"model": bundle.version, "labelled file": args.input,
+                                "rows with a page": len(rows), "planner": planner})
+    paths = write_report(rep, args.out)
+    return _finish(_summary(stats, report=str(paths["html"]), json=str(paths["json"]),
+                            rows=len(keys), pages=len(rows),
+                            budget_table=[{"budget": r["budget"],
+                                           **{s: r[s]["accuracy"] for s in
+                                              ("planner", "lowest-confidence", "random",
+                                               "oracle")}} for r in rep["budget_table"]]),
+                   stats, args.quiet)
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     from cascade.demo import run_demo
 
@@ -533,6 +648,38 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--top", type=int, default=3, help="best categories kept per URL")
     _add_fetch_options(p)
     p.set_defaults(func=cmd_refine)
+
+    p = command("plan", "Choose which URLs to fetch under a budget: best expected gain per "
+                        "unit of cost first; writes the fetch list (one JSON line a URL).")
+    p.add_argument("urls", nargs="*", help="URLs to plan (instead of --input)")
+    _add_input(p, required=False)
+    p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
+    p.add_argument("--budget", "-b", required=True,
+                   help="most fetches: a number (500) or a share of the URLs (10%%)")
+    p.add_argument("--budget-bytes", help="also cap expected bytes (e.g. 500MB, 2GiB)")
+    p.add_argument("--budget-seconds", help="also cap summed fetch time, in seconds")
+    p.add_argument("--fetch-history",
+                   help="earlier 'cascade fetch' output (JSON Lines): learn per-domain "
+                        "failure rate, bytes and time from it")
+    p.add_argument("--min-gain", type=float, default=0.0,
+                   help="never fetch a URL whose expected gain is not above this")
+    p.add_argument("--all", action="store_true",
+                   help="also write the URLs left out, each with its reason")
+    p.add_argument("--output", "-o", default="-")
+    p.set_defaults(func=cmd_plan)
+
+    p = command("report", "Measure what each fetch budget buys on a labelled file with saved "
+                          "pages: HTML report with plots, plus JSON.")
+    _add_input(p)
+    p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
+    p.add_argument("--pages", help="folder of saved pages named by the input's 'page' column")
+    p.add_argument("--out", required=True, help="folder for report.html, report.json, PNGs")
+    p.add_argument("--operating-budget", type=float, default=0.3,
+                   help="share of URLs fetched for the 'after' figures (default 0.3)")
+    p.add_argument("--precision-target", type=float, default=0.95)
+    p.add_argument("--seeds", type=int, default=5, help="random-order repeats (default 5)")
+    p.add_argument("--title", default="cascade budget report")
+    p.set_defaults(func=cmd_report)
 
     p = command("demo", "Run the whole job on the invented demo scenario into a folder.")
     p.add_argument("--out", default="demo-output", help="report folder (default demo-output)")

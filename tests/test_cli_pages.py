@@ -71,3 +71,44 @@ def test_explain_with_page_shows_page_words(trained, capsys) -> None:
     out = capsys.readouterr().out
     assert "page model:" in out and "URL model:" in out
     assert "body:" in out or "title:" in out
+
+
+def test_train_with_pages_writes_a_cost_model(trained) -> None:
+    root, _ = trained
+    assert (root / "model" / "cost" / "model.json").is_file()
+
+
+def test_plan_writes_the_fetch_list_within_budget(trained, capsys) -> None:
+    root, records = trained
+    urls = [r.url for r in records[:50]]
+    code = main(["plan", "-m", str(root / "model"), "--budget", "10%", "--all", *urls])
+    assert code == EXIT_OK
+    captured = capsys.readouterr()
+    rows = [json.loads(line) for line in captured.out.splitlines()]
+    chosen = [r for r in rows if r["fetch"]]
+    summary = json.loads(captured.err.strip().splitlines()[-1])
+    limit = summary["urls"] // 10  # 10% of the usable URLs, rounded down
+    assert summary["urls"] == len(rows) and len(rows) >= 45
+    worth = summary["urls"] - summary["left_out"].get("no-gain", 0)
+    assert len(chosen) == summary["fetches"] == min(limit, worth)
+    assert [r["rank"] for r in chosen] == list(range(1, len(chosen) + 1))
+    assert all(r["reason"] in ("budget:count", "no-gain") for r in rows if not r["fetch"])
+    assert chosen[0]["expected_gain"] >= chosen[-1]["expected_gain"]
+
+
+def test_plan_rejects_a_bad_budget(trained, capsys) -> None:
+    root, records = trained
+    code = main(["plan", "-m", str(root / "model"), "--budget", "lots", records[0].url])
+    assert code == 2
+    assert "budget" in capsys.readouterr().err
+
+
+def test_report_writes_html_and_json(trained, tmp_path) -> None:
+    root, _ = trained
+    code = main(["--quiet", "report", "-m", str(root / "model"), "-i", str(root / "train.csv"),
+                 "--pages", str(root / "saved"), "--out", str(tmp_path / "rep"), "--seeds", "2"])
+    assert code == EXIT_OK
+    rep = json.loads((tmp_path / "rep" / "report.json").read_text())
+    assert rep["context"]["planner"] == "cost model"
+    assert rep["context"]["rows with a page"] == 480
+    assert (tmp_path / "rep" / "report.html").stat().st_size > 10_000

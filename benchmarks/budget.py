@@ -1,0 +1,142 @@
+"""What each unit of fetch budget buys: cascade's planner against random order,
+lowest-confidence-first and the oracle, on WebKB (leave one university out) and the demo.
+
+    python benchmarks/page_model.py --datasets webkb,demo --arrays out/arrays
+    python benchmarks/budget.py --arrays out/arrays --json out/budget.json
+
+The first command fits the URL model, page model and fusion per split (the slow part) and
+saves, per split, both models' probabilities on the held-out rows and on the stacking
+(out-of-fold) rows of training. This script then fits the cost model on the stacking rows
+only, ranks the held-out rows, and measures accuracy at each budget for every strategy.
+
+Spread: for each of ``--seeds`` seeds the cost model is fitted on a bootstrap resample of the
+stacking rows and all strategies are measured on a bootstrap resample of the held-out rows
+(the same resample for all, so differences are paired). Seed 0 also reports the plain run
+(no resampling). The held-out rows are first visits: the store knows none of their domains.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _common import machine, write_json  # noqa: E402
+
+from cascade.budget import CostModel  # noqa: E402
+from cascade.report import (  # noqa: E402
+    DEFAULT_BUDGETS,
+    STRATEGIES,
+    budget_curve,
+    budget_for_share,
+    strategy_orders,
+)
+from cascade.taxonomy import demo_taxonomy  # noqa: E402
+
+FINE = np.round(np.arange(0, 101) / 100.0, 2)
+
+
+def _costs(name: str, classes: list[str]) -> np.ndarray:
+    if name != "demo":
+        return np.ones(len(classes))  # WebKB has no cost notion: every mistake weighs 1
+    tax = demo_taxonomy()
+    return np.array([tax.categories[tax.index(c)].cost for c in classes])
+
+
+def _curves(y, pu, pf, gain, costs, counts, seed: int) -> dict[str, dict]:
+    orders = strategy_orders(y, pu, pf, gain, counts, costs, seed=seed)
+    return {s: budget_curve(y, pu, pf, orders[s], FINE, counts, costs) for s in STRATEGIES}
+
+
+def _demo_counts(urls: np.ndarray) -> np.ndarray:
+    """Lookup counts of the demo's held-out URLs, from the same generated telemetry."""
+    from cascade.scenario import generate_telemetry
+    from cascade.urls import normalize
+
+    by_url: dict[str, int] = {}
+    for r in generate_telemetry(seed=0, n_sites=2000):
+        key = normalize(r.url).url
+        by_url[key] = by_url.get(key, 0) + int(r.count)
+    return np.array([by_url.get(str(u), 1) for u in urls], dtype=np.float64)
+
+
+def run_split(path: Path, seeds: int, by_lookups: bool = False) -> dict:
+    d = np.load(path, allow_pickle=False)
+    classes = [str(c) for c in d["classes"]]
+    name = "demo" if path.stem == "demo" else path.stem
+    costs = _costs(name, classes)
+    y, pu, pf = d["y"], d["url_proba"], d["fused_proba"]
+    oy, opu, opf, odom = d["oof_y"], d["oof_url_proba"], d["oof_fused_proba"], d["oof_domain"]
+    counts = _demo_counts(d["url"]) if by_lookups else None
+    n, on = len(y), len(oy)
+    runs = []
+    for s in range(seeds + 1):  # run 0: no resampling; runs 1..seeds: bootstrap
+        rng = np.random.default_rng(s)
+        tr = np.arange(on) if s == 0 else rng.integers(0, on, on)
+        te = np.arange(n) if s == 0 else rng.integers(0, n, n)
+        cm = CostModel(seed=s).fit(opu[tr], opf[tr], oy[tr], costs=costs,
+                                   domains=[str(x) for x in odom[tr]])
+        gain = cm.expected_gain(pu[te])["gain"]
+        w = None if counts is None else counts[te].astype(float)
+        runs.append(_curves(y[te], pu[te], pf[te], gain, costs, w, seed=s))
+    plain, boot = runs[0], runs[1:]
+    table = []
+    for b in DEFAULT_BUDGETS:
+        j = int(round(b * 100))
+        row = {"budget": b}
+        for s in STRATEGIES:
+            row[s] = round(plain[s]["accuracy"][j], 4)
+        diffs = [r["planner"]["accuracy"][j] - r["lowest-confidence"]["accuracy"][j]
+                 for r in boot]
+        row["planner_minus_lowconf"] = {"plain": round(row["planner"] - row["lowest-confidence"],
+                                                       4),
+                                        "boot_mean": round(float(np.mean(diffs)), 4),
+                                        "boot_min": round(float(np.min(diffs)), 4),
+                                        "boot_max": round(float(np.max(diffs)), 4)}
+        row["planner_cost_weighted_error"] = round(plain["planner"]["cost_weighted_error"][j], 4)
+        table.append(row)
+    fine_diff = np.array([np.array(r["planner"]["accuracy"]) -
+                          np.array(r["lowest-confidence"]["accuracy"]) for r in boot])
+    gain_all = plain["planner"]["accuracy"][-1] - plain["planner"]["accuracy"][0]
+    shares = {s: {f"{int(q * 100)}%": budget_for_share(FINE, plain[s]["accuracy"], q, gain_all)
+                  for q in (0.9, 0.95)} for s in STRATEGIES}
+    boot_share = [budget_for_share(FINE, r["planner"]["accuracy"], 0.9,
+                                   r["planner"]["accuracy"][-1] - r["planner"]["accuracy"][0])
+                  for r in boot]
+    return {"rows": int(n), "stacking_rows": int(on), "classes": len(classes),
+            "weighted_by_lookups": counts is not None,
+            "url_only_accuracy": round(plain["planner"]["accuracy"][0], 4),
+            "fetch_all_accuracy": round(plain["planner"]["accuracy"][-1], 4),
+            "oracle_ceiling": round(max(plain["oracle"]["accuracy"]), 4),
+            "table": table, "budget_for_gain_share": shares,
+            "planner_budget_for_90pct_boot": boot_share,
+            "fine_grid_planner_minus_lowconf": {
+                "points_below_zero_mean": int((fine_diff.mean(axis=0) < -1e-9).sum()),
+                "worst_mean": round(float(fine_diff.mean(axis=0).min()), 4),
+                "worst_point": float(FINE[int(fine_diff.mean(axis=0).argmin())])}}
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__,
+                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--arrays", type=Path, default=Path("out/arrays"))
+    ap.add_argument("--json", help="also write the JSON here")
+    ap.add_argument("--seeds", type=int, default=5)
+    args = ap.parse_args()
+    out: dict = {"benchmark": "budget", "machine": machine(), "seeds": args.seeds, "splits": {}}
+    files = sorted(args.arrays.glob("*.npz"))
+    if not files:
+        sys.exit(f"no arrays under {args.arrays}: run benchmarks/page_model.py --arrays first")
+    for path in files:
+        out["splits"][path.stem] = run_split(path, args.seeds)
+        if path.stem == "demo":
+            out["splits"]["demo-by-lookups"] = run_split(path, args.seeds, by_lookups=True)
+        print(f"{path.stem}: done", file=sys.stderr, flush=True)
+    write_json(out, args.json)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,418 @@
+"""What each unit of fetch budget buys, on a labelled held-out set: numbers, plots, HTML.
+
+Inputs are arrays for the same labelled rows: the true class, the URL model's probabilities,
+the fused probabilities the row would get if its page were fetched (the URL's own where the
+fetch failed or the page was thin), the cost model's expected gain, and optionally lookup
+counts. Fetch strategies compared at every budget, all on the same rows:
+
+- ``planner``: cascade's cost model (highest expected gain first);
+- ``lowest-confidence``: the URL model's least confident verdicts first;
+- ``random``: a uniform random order (mean over seeds);
+- ``oracle``: fetches exactly the URLs whose fetch fixes the verdict, most valuable first,
+  and nothing else: the ceiling no planner can pass.
+
+A budget is a share of the distinct URLs fetched; accuracy and the cost-weighted error
+are weighted by lookup count when counts are given (the planner is then told the counts).
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import json
+import math
+import time
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from cascade import __version__
+from cascade import metrics as M
+
+__all__ = [
+    "DEFAULT_BUDGETS",
+    "STRATEGIES",
+    "budget_curve",
+    "budget_for_share",
+    "build_report",
+    "strategy_orders",
+    "write_report",
+]
+
+STRATEGIES = ("planner", "lowest-confidence", "random", "oracle")
+DEFAULT_BUDGETS = (0.0, 0.05, 0.10, 0.20, 0.30, 0.50, 1.0)
+ROC_FPR = 1e-3
+
+
+def _arrays(y: Any, url_proba: Any, fused_proba: Any, counts: Any, costs: Any
+            ) -> tuple[np.ndarray, ...]:
+    y = np.asarray(y, dtype=np.int64)
+    pu = np.asarray(url_proba, dtype=np.float64)
+    pf = np.asarray(fused_proba, dtype=np.float64)
+    if pu.ndim != 2 or pf.shape != pu.shape or y.shape != (len(pu),) or len(pu) == 0:
+        raise ValueError("y (n,), url_proba and fused_proba (n, k) must match and be non-empty")
+    w = np.ones(len(y)) if counts is None else np.asarray(counts, dtype=np.float64)
+    c = np.ones(pu.shape[1]) if costs is None else np.asarray(costs, dtype=np.float64)
+    if w.shape != y.shape or c.shape != (pu.shape[1],):
+        raise ValueError("counts must be (n,) and costs (k,)")
+    return y, pu, pf, w, c
+
+
+def strategy_orders(y: Any, url_proba: Any, fused_proba: Any, gain: Any,
+                    counts: Any = None, costs: Any = None, seed: int = 0
+                    ) -> dict[str, np.ndarray]:
+    """Row order in which each strategy fetches. The oracle's order lists only its fixes."""
+    y, pu, pf, w, c = _arrays(y, url_proba, fused_proba, counts, costs)
+    n = len(y)
+    idx = np.arange(n)
+    gain = np.asarray(gain, dtype=np.float64)
+    conf = pu.max(axis=1)
+    delta = w * c[y] * ((pf.argmax(1) == y).astype(float) - (pu.argmax(1) == y))
+    fixes = np.flatnonzero(delta > 0)
+    return {
+        "planner": np.lexsort((idx, -gain)),
+        "lowest-confidence": np.lexsort((idx, conf)),
+        "random": np.random.default_rng(seed).permutation(n),
+        "oracle": fixes[np.lexsort((fixes, -delta[fixes]))],
+    }
+
+
+def budget_curve(y: Any, url_proba: Any, fused_proba: Any, order: Sequence[int],
+                 fractions: Sequence[float], counts: Any = None, costs: Any = None
+                 ) -> dict[str, list[float]]:
+    """Accuracy and cost-weighted error when the first ``round(f * n)`` rows of ``order``
+    are fetched (fused verdict) and the rest keep the URL verdict, for each ``f``."""
+    y, pu, pf, w, c = _arrays(y, url_proba, fused_proba, counts, costs)
+    n = len(y)
+    order = np.asarray(order, dtype=np.int64)
+    url_ok = (pu.argmax(1) == y).astype(float)
+    fused_ok = (pf.argmax(1) == y).astype(float)
+    cw = w * c[y]
+    base_acc = float((w * url_ok).sum() / w.sum())
+    base_err = float((cw * (1 - url_ok)).sum() / cw.sum())
+    d_acc = np.concatenate([[0.0], np.cumsum((w * (fused_ok - url_ok))[order])]) / w.sum()
+    d_err = np.concatenate([[0.0], np.cumsum((cw * (fused_ok - url_ok))[order])]) / cw.sum()
+    acc, err = [], []
+    for f in fractions:
+        m = min(int(round(float(f) * n)), len(order))
+        acc.append(base_acc + float(d_acc[m]))
+        err.append(base_err - float(d_err[m]))
+    return {"accuracy": acc, "cost_weighted_error": err}
+
+
+def budget_for_share(fractions: Sequence[float], accuracy: Sequence[float],
+                     share: float, total: float | None = None) -> float | None:
+    """Smallest budget in ``fractions`` whose accuracy gain over budget 0 reaches ``share``
+    of ``total`` (default: this curve's own gain at its largest budget, i.e. fetching
+    everything). None if it never does, or there is no gain to share."""
+    acc = np.asarray(accuracy, dtype=np.float64)
+    total = float(acc[-1] - acc[0]) if total is None else float(total)
+    if not total > 0:
+        return None
+    hit = np.flatnonzero(acc - acc[0] >= share * total - 1e-12)
+    return float(fractions[int(hit[0])]) if hit.size else None
+
+
+def _mixed(pu: np.ndarray, pf: np.ndarray, order: np.ndarray, m: int) -> np.ndarray:
+    out = pu.copy()
+    out[order[:m]] = pf[order[:m]]
+    return out
+
+
+def build_report(
+    y: Any,
+    url_proba: Any,
+    fused_proba: Any,
+    gain: Any,
+    classes: Sequence[str],
+    costs: Any = None,
+    counts: Any = None,
+    budgets: Sequence[float] = DEFAULT_BUDGETS,
+    operating_budget: float = 0.30,
+    precision_target: float = 0.95,
+    seeds: int = 5,
+    title: str = "cascade budget report",
+    context: dict[str, Any] | None = None,
+) -> dict[str, Any]:
+    """Every number of the report as a JSON-ready dict (``write_report`` draws it)."""
+    y, pu, pf, w, c = _arrays(y, url_proba, fused_proba, counts, costs)
+    n, k = pu.shape
+    fine = np.round(np.arange(0, 101) / 100.0, 2)
+    curves: dict[str, Any] = {}
+    for name in STRATEGIES:
+        per_seed = []
+        for s in range(seeds if name == "random" else 1):
+            order = strategy_orders(y, pu, pf, gain, w, c, seed=s)[name]
+            per_seed.append(budget_curve(y, pu, pf, order, fine, w, c))
+        acc = np.mean([p["accuracy"] for p in per_seed], axis=0)
+        err = np.mean([p["cost_weighted_error"] for p in per_seed], axis=0)
+        curves[name] = {"accuracy": acc.tolist(), "cost_weighted_error": err.tolist()}
+        if name == "random":
+            curves[name]["accuracy_min"] = np.min([p["accuracy"] for p in per_seed], 0).tolist()
+            curves[name]["accuracy_max"] = np.max([p["accuracy"] for p in per_seed], 0).tolist()
+    table = []
+    for b in budgets:
+        j = int(round(b * 100))
+        row: dict[str, Any] = {"budget": b}
+        for name in STRATEGIES:
+            row[name] = {"accuracy": round(curves[name]["accuracy"][j], 4),
+                         "cost_weighted_error": round(curves[name]["cost_weighted_error"][j], 4)}
+        table.append(row)
+    all_fetch = curves["planner"]["accuracy"][-1]
+    gain_all = all_fetch - curves["planner"]["accuracy"][0]
+    shares = {name: {f"{int(q * 100)}%": budget_for_share(fine, curves[name]["accuracy"], q,
+                                                          gain_all)
+                     for q in (0.90, 0.95)} for name in STRATEGIES}
+    orders = strategy_orders(y, pu, pf, gain, w, c)
+    m_op = int(round(operating_budget * n))
+    at_op = _mixed(pu, pf, orders["planner"], m_op)
+    views = {"url only": pu, f"planner at {operating_budget:.0%}": at_op, "fetch all": pf}
+    coverage = {}
+    for name, p in views.items():
+        cov, thr = M.coverage_at_precision(y, p, precision_target, sample_weight=w)
+        coverage[name] = {"coverage": round(cov, 4),
+                          "threshold": None if math.isinf(thr) else round(thr, 4)}
+    risk = {}
+    for name, p in views.items():
+        cov, r = M.risk_coverage_curve(y, p, sample_weight=w)
+        step = max(1, len(cov) // 200)
+        risk[name] = {"coverage": np.round(cov[::step], 4).tolist() + [1.0],
+                      "risk": np.round(r[::step], 4).tolist() + [round(float(r[-1]), 4)]}
+    tpr = {name: M.tpr_at_fpr(y, p, ROC_FPR, sample_weight=w)
+           for name, p in (("url only", pu), ("cascade", at_op))}
+    auc = M.roc_auc_one_vs_rest(y, at_op, sample_weight=w)
+    per_class = []
+    for j, cls in enumerate(classes):
+        per_class.append({
+            "category": cls, "rows": int((y == j).sum()), "cost": float(c[j]),
+            f"tpr_at_fpr_{ROC_FPR:g}_url": _num(tpr["url only"][j]),
+            f"tpr_at_fpr_{ROC_FPR:g}_cascade": _num(tpr["cascade"][j]),
+            "auc_cascade": _num(auc[j])})
+    reliability = {name: M.reliability_table(y, p, 15, sample_weight=w).to_rows()
+                   for name, p in (("url only", pu), ("cascade", at_op))}
+    ece = {name: round(M.expected_calibration_error(y, p, 15, sample_weight=w), 4)
+           for name, p in views.items()}
+    return {
+        "report": "cascade-budget", "cascade_version": __version__, "title": title,
+        "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        "rows": int(n), "classes": list(classes), "weighted_by_lookups": counts is not None,
+        "lookups": float(w.sum()), "context": context or {},
+        "operating_budget": operating_budget, "precision_target": precision_target,
+        "random_seeds": seeds, "budget_table": table,
+        "budget_for_gain_share": shares,
+        "gain_of_fetching_all": {"accuracy": round(gain_all, 4)},
+        "coverage_at_precision": coverage, "ece_15": ece, "per_class": per_class,
+        "curves": {"budget": fine.tolist(), **curves},
+        "risk_coverage": risk, "reliability": reliability,
+        "roc": _roc_points(y, {"url only": pu, "cascade": at_op}, classes),
+    }
+
+
+def _num(x: Any) -> float | None:
+    x = float(x)
+    return None if math.isnan(x) else round(x, 4)
+
+
+def _roc_points(y: np.ndarray, views: dict[str, np.ndarray], classes: Sequence[str]
+                ) -> dict[str, Any]:
+    """Per class, one-vs-rest ROC points (reference implementation: sklearn.metrics)."""
+    from sklearn.metrics import roc_curve
+
+    out: dict[str, Any] = {}
+    for name, p in views.items():
+        per = {}
+        for j, cls in enumerate(classes):
+            pos = y == j
+            if pos.all() or not pos.any():
+                continue
+            fpr, tpr, _ = roc_curve(pos, p[:, j], drop_intermediate=True)
+            step = max(1, len(fpr) // 300)
+            keep = np.unique(np.append(np.arange(0, len(fpr), step), len(fpr) - 1))
+            per[cls] = {"fpr": np.round(fpr[keep], 6).tolist(),
+                        "tpr": np.round(tpr[keep], 6).tolist()}
+        out[name] = per
+    return out
+
+
+# ------------------------------------------------------------------------ drawing
+
+_COLOURS = {"planner": "#1b6b5a", "lowest-confidence": "#c2711b", "random": "#7a7a7a",
+            "oracle": "#3b4cc0", "url only": "#c2711b", "cascade": "#1b6b5a",
+            "fetch all": "#3b4cc0"}
+
+
+def _figures(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
+    """(id, caption, base64 PNG) per plot."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    from matplotlib import pyplot as plt
+
+    plt.rcParams.update({"font.size": 9, "axes.spines.top": False,
+                         "axes.spines.right": False})
+    figs: list[tuple[str, str, str]] = []
+
+    def keep(fig: Any, fid: str, caption: str) -> None:
+        buf = io.BytesIO()
+        fig.savefig(buf, format="png", dpi=110, bbox_inches="tight")
+        plt.close(fig)
+        figs.append((fid, caption, base64.b64encode(buf.getvalue()).decode("ascii")))
+
+    x = np.array(rep["curves"]["budget"]) * 100
+    for metric, label, fid in (("accuracy", "accuracy", "budget-accuracy"),
+                               ("cost_weighted_error", "cost-weighted error", "budget-error")):
+        fig, ax = plt.subplots(figsize=(6.2, 3.6))
+        for name in STRATEGIES:
+            cur = rep["curves"][name]
+            ax.plot(x, cur[metric], label=name, color=_COLOURS[name],
+                    lw=2.2 if name == "planner" else 1.4,
+                    ls="--" if name == "oracle" else "-")
+            if name == "random" and metric == "accuracy":
+                ax.fill_between(x, cur["accuracy_min"], cur["accuracy_max"],
+                                color=_COLOURS[name], alpha=0.15, lw=0)
+        ax.set_xlabel("fetch budget (% of URLs fetched)")
+        ax.set_ylabel(label)
+        ax.grid(alpha=0.3)
+        ax.legend(frameon=False, fontsize=8)
+        keep(fig, fid, f"{label.capitalize()} against fetch budget, four strategies.")
+    fig, ax = plt.subplots(figsize=(6.2, 3.6))
+    for name, cur in rep["risk_coverage"].items():
+        ax.plot(cur["coverage"], cur["risk"], label=name,
+                color=_COLOURS.get(name.split(" at ")[0], "#1b6b5a"))
+    ax.set_xlabel("coverage (share of lookups answered)")
+    ax.set_ylabel("risk (error among answered)")
+    ax.grid(alpha=0.3)
+    ax.legend(frameon=False, fontsize=8)
+    keep(fig, "risk-coverage", "Risk against coverage, answering the most confident first.")
+    classes = [c for c in rep["classes"] if c in rep["roc"].get("cascade", {})]
+    cols = 4
+    rows = max(1, math.ceil(len(classes) / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(8.4, 2.0 * rows + 0.4), squeeze=False)
+    for ax in axes.flat[len(classes):]:
+        ax.axis("off")
+    for ax, cls in zip(axes.flat, classes, strict=False):
+        for name in ("url only", "cascade"):
+            pts = rep["roc"][name].get(cls)
+            if pts:
+                ax.plot(np.maximum(pts["fpr"], 1e-5), pts["tpr"], color=_COLOURS[name],
+                        lw=1.2, label=name)
+        ax.axvline(ROC_FPR, color="#b22222", lw=0.8, ls=":")
+        ax.set_xscale("log")
+        ax.set_xlim(1e-5, 1)
+        ax.set_ylim(0, 1.02)
+        ax.set_title(cls, fontsize=8)
+        ax.tick_params(labelsize=6)
+    axes.flat[0].legend(frameon=False, fontsize=6, loc="lower right")
+    keep(fig, "roc", f"Per-category ROC (one vs rest, log FPR); dotted line at FPR {ROC_FPR:g}.")
+    fig, ax = plt.subplots(figsize=(4.4, 4.0))
+    ax.plot([0, 1], [0, 1], color="#999999", lw=0.8, ls=":")
+    for name, rows_ in rep["reliability"].items():
+        pts = [(r["mean_confidence"], r["accuracy"]) for r in rows_ if r["accuracy"] is not None]
+        if pts:
+            xs, ys = zip(*pts, strict=True)
+            ax.plot(xs, ys, marker="o", ms=3, label=name, color=_COLOURS[name])
+    ax.set_xlabel("mean confidence in bin")
+    ax.set_ylabel("accuracy in bin")
+    ax.set_xlim(0, 1)
+    ax.set_ylim(0, 1)
+    ax.legend(frameon=False, fontsize=8)
+    keep(fig, "reliability", "Reliability: accuracy against confidence, 15 equal bins.")
+    return figs
+
+
+_CSS = """
+body{font-family:Georgia,'DejaVu Serif',serif;max-width:60rem;margin:2rem auto;padding:0 1rem;
+color:#222;background:#fbfaf7;line-height:1.45}
+h1{font-size:1.6rem;border-bottom:3px solid #1b6b5a;padding-bottom:.3rem}
+h2{font-size:1.15rem;margin-top:2rem;color:#1b6b5a}
+table{border-collapse:collapse;font-family:'DejaVu Sans Mono',monospace;font-size:.8rem}
+td,th{padding:.2rem .6rem;border-bottom:1px solid #ddd;text-align:right}
+th{background:#eef3f1}
+td:first-child,th:first-child{text-align:left}
+.best{font-weight:bold;color:#1b6b5a}
+figure{margin:1rem 0;background:#fff;padding:.5rem;border:1px solid #e4e1da}
+figcaption{font-size:.85rem;color:#555}
+img{max-width:100%}
+.note{font-size:.85rem;color:#555;border-left:3px solid #c2711b;padding-left:.6rem}
+"""
+
+
+def _html(rep: dict[str, Any], figs: list[tuple[str, str, str]]) -> str:
+    e = html.escape
+    volume = (f", weighted by {int(rep['lookups']):,} lookups"
+              if rep["weighted_by_lookups"] else "")
+    parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
+             f"<title>{e(rep['title'])}</title><style>{_CSS}</style></head><body>",
+             f"<h1>{e(rep['title'])}</h1>",
+             f"<p>{rep['rows']} labelled URLs, {len(rep['classes'])} categories"
+             f"{volume}."
+             f" Written {e(rep['created_at'])} by cascade {e(rep['cascade_version'])}.</p>"]
+    if rep["context"]:
+        parts.append("<table>" + "".join(f"<tr><td>{e(str(a))}</td><td>{e(str(b))}</td></tr>"
+                                         for a, b in rep["context"].items()) + "</table>")
+    parts.append("<h2>What each fetch budget buys</h2><table><tr><th>budget</th>"
+                 + "".join(f"<th>{e(s)}</th>" for s in STRATEGIES)
+                 + "<th>planner cost-weighted error</th></tr>")
+    for row in rep["budget_table"]:
+        best = max(row[s]["accuracy"] for s in STRATEGIES if s != "oracle")
+        cells = "".join(
+            f"<td class=\"{'best' if s != 'oracle' and row[s]['accuracy'] == best else ''}\">"
+            f"{row[s]['accuracy']:.4f}</td>" for s in STRATEGIES)
+        parts.append(f"<tr><td>{row['budget']:.0%}</td>{cells}"
+                     f"<td>{row['planner']['cost_weighted_error']:.4f}</td></tr>")
+    parts.append("</table><p>Accuracy when that share of the URLs is fetched; the rest keep "
+                 "the URL model's verdict. The oracle fetches only URLs a fetch fixes.</p>")
+    parts.append("<h2>Budget needed for a share of the gain of fetching everything</h2>"
+                 "<table><tr><th>strategy</th><th>90% of gain</th><th>95% of gain</th></tr>")
+    for s in STRATEGIES:
+        v = rep["budget_for_gain_share"][s]
+        parts.append(f"<tr><td>{e(s)}</td>" + "".join(
+            f"<td>{'-' if v[q] is None else format(v[q], '.0%')}</td>" for q in ("90%", "95%"))
+            + "</tr>")
+    parts.append(f"</table><p>Fetching everything gains "
+                 f"{rep['gain_of_fetching_all']['accuracy']:+.4f} accuracy.</p>")
+    parts.append(f"<h2>Coverage at precision {rep['precision_target']:.0%}</h2><table><tr>"
+                 "<th>verdicts</th><th>coverage of lookups</th><th>confidence threshold</th>"
+                 "<th>ECE (15 bins)</th></tr>")
+    for name, v in rep["coverage_at_precision"].items():
+        thr = "-" if v["threshold"] is None else f"{v['threshold']:.4f}"
+        parts.append(f"<tr><td>{e(name)}</td><td>{v['coverage']:.4f}</td><td>{thr}</td>"
+                     f"<td>{rep['ece_15'][name]:.4f}</td></tr>")
+    parts.append("</table>")
+    tkey = f"tpr_at_fpr_{ROC_FPR:g}"
+    parts.append(f"<h2>Per category</h2><table><tr><th>category</th><th>rows</th><th>cost</th>"
+                 f"<th>TPR at FPR {ROC_FPR:g}, URL</th><th>same, cascade</th><th>AUC, cascade</th>"
+                 "</tr>")
+    for r in rep["per_class"]:
+        def f(v: float | None) -> str:
+            return "-" if v is None else f"{v:.3f}"
+        parts.append(f"<tr><td>{e(r['category'])}</td><td>{r['rows']}</td><td>{r['cost']:g}</td>"
+                     f"<td>{f(r[tkey + '_url'])}</td><td>{f(r[tkey + '_cascade'])}</td>"
+                     f"<td>{f(r['auc_cascade'])}</td></tr>")
+    parts.append("</table>")
+    parts.append("<h2>Plots</h2>")
+    for fid, caption, data in figs:
+        parts.append(f"<figure id=\"{fid}\"><img alt=\"{e(caption)}\" "
+                     f"src=\"data:image/png;base64,{data}\"><figcaption>{e(caption)}"
+                     "</figcaption></figure>")
+    parts.append("<p class=\"note\">Categories are probabilistic estimates. Whether to block, "
+                 "warn or allow is the policy owner's decision, under local law and the "
+                 "organisation's policy; lookup logs are personal data.</p></body></html>\n")
+    return "".join(parts)
+
+
+def write_report(rep: dict[str, Any], out_dir: str | Path) -> dict[str, Path]:
+    """Write ``report.json``, ``report.html`` (plots embedded) and one PNG per plot."""
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    figs = _figures(rep)
+    paths = {"json": out / "report.json", "html": out / "report.html"}
+    paths["json"].write_text(json.dumps(rep, indent=1) + "\n", encoding="utf-8")
+    paths["html"].write_text(_html(rep, figs), encoding="utf-8")
+    for fid, _caption, data in figs:
+        (out / f"{fid}.png").write_bytes(base64.b64decode(data))
+        paths[fid] = out / f"{fid}.png"
+    return paths

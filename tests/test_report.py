@@ -1,0 +1,109 @@
+"""The budget report: curves against sklearn.metrics, the strategies' defining properties,
+and a self-contained HTML file with every plot embedded."""
+
+from __future__ import annotations
+
+import json
+import re
+
+import numpy as np
+import pytest
+from sklearn.metrics import accuracy_score, roc_curve
+
+from cascade.report import (
+    STRATEGIES,
+    budget_curve,
+    budget_for_share,
+    build_report,
+    strategy_orders,
+    write_report,
+)
+from tests.test_budget import _synthetic
+
+
+@pytest.fixture(scope="module")
+def data():
+    y, pu, pf = _synthetic(800, k=4, seed=7)
+    gain = 1.0 - pu.max(axis=1) + np.random.default_rng(0).normal(0, 0.05, len(y))
+    return y, pu, pf, gain
+
+
+def test_curve_ends_equal_url_only_and_fetch_all_accuracy(data) -> None:
+    y, pu, pf, gain = data
+    order = strategy_orders(y, pu, pf, gain)["planner"]
+    cur = budget_curve(y, pu, pf, order, [0.0, 1.0])
+    # reference: sklearn.metrics.accuracy_score
+    assert cur["accuracy"][0] == pytest.approx(accuracy_score(y, pu.argmax(1)))
+    assert cur["accuracy"][1] == pytest.approx(accuracy_score(y, pf.argmax(1)))
+
+
+def test_partial_budget_matches_sklearn_on_the_mixed_verdicts(data) -> None:
+    y, pu, pf, gain = data
+    order = strategy_orders(y, pu, pf, gain)["lowest-confidence"]
+    m = 240
+    mixed = pu.argmax(1).copy()
+    mixed[order[:m]] = pf[order[:m]].argmax(1)
+    w = np.random.default_rng(1).integers(1, 50, len(y)).astype(float)
+    cur = budget_curve(y, pu, pf, order, [m / len(y)], counts=w)
+    # reference: sklearn.metrics.accuracy_score with sample_weight (lookup volume)
+    assert cur["accuracy"][0] == pytest.approx(accuracy_score(y, mixed, sample_weight=w))
+
+
+def test_cost_weighted_error_weights_by_true_category_cost(data) -> None:
+    y, pu, pf, gain = data
+    costs = np.array([1.0, 1.0, 1.0, 5.0])
+    cur = budget_curve(y, pu, pf, np.arange(len(y)), [0.0], costs=costs)
+    wrong = pu.argmax(1) != y
+    expected = (costs[y] * wrong).sum() / costs[y].sum()  # definition, computed by hand
+    assert cur["cost_weighted_error"][0] == pytest.approx(expected)
+
+
+def test_lowest_confidence_order_and_oracle_ceiling(data) -> None:
+    y, pu, pf, gain = data
+    orders = strategy_orders(y, pu, pf, gain)
+    conf = pu.max(1)
+    assert np.all(np.diff(conf[orders["lowest-confidence"]]) >= 0)
+    fixes = (pf.argmax(1) == y) & (pu.argmax(1) != y)
+    assert set(orders["oracle"]) == set(np.flatnonzero(fixes))
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], seeds=3)
+    for j in range(len(rep["curves"]["budget"])):
+        oracle = rep["curves"]["oracle"]["accuracy"][j]
+        assert all(oracle >= rep["curves"][s]["accuracy"][j] - 1e-12 for s in STRATEGIES)
+
+
+def test_budget_for_share() -> None:
+    f = [0.0, 0.1, 0.2, 0.3, 1.0]
+    assert budget_for_share(f, [0.5, 0.7, 0.85, 0.9, 0.9], 0.9) == 0.3
+    assert budget_for_share(f, [0.5, 0.7, 0.85, 0.9, 0.9], 0.5) == 0.1
+    assert budget_for_share(f, [0.5, 0.5, 0.5, 0.5, 0.5], 0.9) is None
+
+
+def test_report_roc_points_are_sklearn_roc_curve(data) -> None:
+    y, pu, pf, gain = data
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], seeds=2)
+    fpr, tpr, _ = roc_curve(y == 2, pu[:, 2], drop_intermediate=True)  # reference: sklearn
+    pts = rep["roc"]["url only"]["c"]
+    assert pts["fpr"][-1] == pytest.approx(fpr[-1]) and pts["tpr"][-1] == pytest.approx(tpr[-1])
+    # TPR at FPR 1e-3 from the ROC points: best TPR with FPR <= 1e-3.
+    full_fpr, full_tpr, _ = roc_curve(y == 2, pu[:, 2], drop_intermediate=False)
+    expected = full_tpr[full_fpr <= 1e-3].max()
+    row = next(r for r in rep["per_class"] if r["category"] == "c")
+    assert row["tpr_at_fpr_0.001_url"] == pytest.approx(expected, abs=1e-4)
+
+
+def test_report_json_and_self_contained_html(data, tmp_path) -> None:
+    y, pu, pf, gain = data
+    counts = np.random.default_rng(2).integers(1, 100, len(y))
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], counts=counts, seeds=2)
+    paths = write_report(rep, tmp_path / "r")
+    back = json.loads(paths["json"].read_text())
+    assert [r["budget"] for r in back["budget_table"]] == [0.0, 0.05, 0.1, 0.2, 0.3, 0.5, 1.0]
+    assert back["weighted_by_lookups"] is True
+    page = paths["html"].read_text()
+    imgs = re.findall(r'<img [^>]*src="data:image/png;base64,', page)
+    assert len(imgs) == 5  # budget accuracy, budget error, risk-coverage, ROC, reliability
+    # Self-contained: nothing loaded from elsewhere.
+    assert not re.search(r'(src|href)="(https?:)?//', page)
+    for fid in ("budget-accuracy", "budget-error", "risk-coverage", "roc", "reliability"):
+        assert paths[fid].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "policy owner" in page
