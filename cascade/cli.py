@@ -525,7 +525,10 @@ def cmd_report(args: argparse.Namespace) -> int:
 def cmd_demo(args: argparse.Namespace) -> int:
     from cascade.demo import run_demo
 
-    result = run_demo(Path(args.out), seed=args.seed, n_sites=args.sites, quiet=args.quiet)
+    if not 0.0 <= args.budget <= 1.0:
+        raise ValueError(f"--budget must be a share of URLs between 0 and 1, not {args.budget}")
+    result = run_demo(Path(args.out), seed=args.seed, n_sites=args.sites, quiet=args.quiet,
+                      budget_fraction=args.budget)
     if not args.quiet:
         _eprint(json.dumps(result["headline"], indent=2))
         _eprint(f"demo: report folder {args.out}")
@@ -685,6 +688,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="demo-output", help="report folder (default demo-output)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--sites", type=int, default=2000, help="invented sites (default 2000)")
+    p.add_argument("--budget", type=float, default=0.3,
+                   help="share of the night's URLs the plan may fetch (default 0.3)")
     p.set_defaults(func=cmd_demo)
     return parser
 

@@ -1,22 +1,25 @@
-"""The end-to-end demo on embedded defaults: invent the scenario's lookup log, train the URL
-model on the weeks before a cut, measure it on the weeks after, score the whole log, and
-write a report folder. Nothing leaves the machine."""
+"""The end-to-end demo on embedded defaults: invent the scenario's lookup log, train every
+model on the weeks before a cut, then run a night over the weeks after: score, plan fetches
+under a budget, fetch from a loopback site farm through the sandboxed fetcher, fuse, and
+write verdicts plus a budget report. Nothing leaves the machine."""
 
 from __future__ import annotations
 
 import json
 import sys
 import time
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from cascade.evaluate import evaluate_proba, evaluation_split
 from cascade.io import open_writer
-from cascade.models.url_model import UrlModel
 from cascade.scenario import generate_telemetry, write_telemetry_csv
 from cascade.taxonomy import demo_taxonomy
 from cascade.urls import normalize
-from cascade.verdict import url_verdicts
+from cascade.verdict import Verdict, url_verdicts
 
 
 def _say(quiet: bool, text: str) -> None:
@@ -24,9 +27,29 @@ def _say(quiet: bool, text: str) -> None:
         print(f"demo: {text}", file=sys.stderr, flush=True)
 
 
+#: The demo's page-model settings: smaller than the library defaults so that ``make demo``
+#: trains all models in a few minutes on two cores (the figures in docs/ use the defaults).
+DEMO_PAGE_PARAMS = {"n_features": 2**18, "max_iter": 60}
+DEMO_FOLDS = 3
+
+
 def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
-             max_fetches: int = 400) -> dict[str, Any]:
-    """Run the demo into ``out``; returns the report dict (also written as report.json)."""
+             budget_fraction: float = 0.30) -> dict[str, Any]:
+    """Run the whole cascade on the invented scenario into ``out``; returns the report dict
+    (also written as report.json), with the budget report under ``out/budget-report``.
+
+    Train (weeks before a time cut): URL model, page model (saved pages of the labelled
+    rows), fusion and cost model. Night run (weeks after, new domains only): score every
+    URL, plan fetches under the budget, fetch the plan from the loopback site farm through
+    the sandboxed fetcher, fuse. Measure: every held-out URL is also fetched once so the
+    report can show what each budget would have bought.
+    """
+    from cascade.budget import Budget, plan
+    from cascade.bundle import fit_bundle
+    from cascade.extract import extract
+    from cascade.report import build_report, write_report
+    from cascade.scenario.pages import render_page
+
     started = time.perf_counter()
     out.mkdir(parents=True, exist_ok=True)
     taxonomy = demo_taxonomy()
@@ -38,101 +61,181 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
     split = evaluation_split(keys, [r.seen_at for r in records], test_fraction=0.25, seed=seed)
     _say(quiet, f"split {split.method} at {split.cut}: {len(split.train)} train, "
                f"{len(split.test)} test (new domains only)")
-    model = UrlModel(seed=seed).fit([keys[i] for i in split.train],
-                                    [labels[i] for i in split.train], taxonomy=taxonomy)
-    test_keys = [keys[i] for i in split.test]
+    train = split.train
+    pages = [extract(render_page(records[i].url, records[i].label, records[i].page_seed),
+                     url=records[i].url) for i in train]
+    _say(quiet, f"training on {len(train)} labelled URLs with their saved pages "
+               f"({DEMO_FOLDS} stacking folds; a few minutes)")
+    t0 = time.perf_counter()
+    bundle = fit_bundle([keys[i] for i in train], [labels[i] for i in train], pages,
+                        taxonomy=taxonomy, page_params=DEMO_PAGE_PARAMS, folds=DEMO_FOLDS,
+                        seed=seed, progress=None if quiet else lambda m: _say(False, m))
+    train_s = time.perf_counter() - t0
+    model = bundle.url_model
+    test = split.test
+    test_keys = [keys[i] for i in test]
     proba = model.predict_proba(test_keys)
-    metrics = evaluate_proba(proba, [labels[i] for i in split.test], model.classes_,
-                             counts=[records[i].count for i in split.test])
+    test_counts = [records[i].count for i in test]
+    metrics = evaluate_proba(proba, [labels[i] for i in test], model.classes_,
+                             counts=test_counts)
     metrics["split"] = split.describe()
     by_signal: dict[str, dict[str, float]] = {}
     pred = proba.argmax(axis=1)
-    for signal in sorted({records[i].signal for i in split.test}):
-        rows = [j for j, i in enumerate(split.test) if records[i].signal == signal]
-        right = sum(model.classes_[pred[j]] == labels[split.test[j]] for j in rows)
+    for signal in sorted({records[i].signal for i in test}):
+        rows = [j for j, i in enumerate(test) if records[i].signal == signal]
+        right = sum(model.classes_[pred[j]] == labels[test[j]] for j in rows)
         by_signal[signal] = {"rows": len(rows), "accuracy": round(right / len(rows), 4)}
     metrics["accuracy_by_url_signal"] = by_signal
-    model.save(out / "model", metrics=metrics)
-    _say(quiet, f"URL model trained in {model.training_['seconds']:.1f}s -> model/ "
-               f"({model.version})")
-    all_proba = model.predict_proba(keys)
-    verdicts = url_verdicts([k.url for k in keys], all_proba, model.classes_, model.version)
+    bundle.save(out / "model", metrics=metrics)
+    _say(quiet, f"models trained in {train_s:.0f}s -> model/ ({bundle.version})")
+
+    budget = Budget(max_fraction=budget_fraction)
+    domains = [k.registered_domain or k.host for k in test_keys]
+    fetch_plan = plan([k.url for k in test_keys], proba, bundle.cost_model, budget,
+                      counts=test_counts, domains=domains)
+    with open_writer(out / "plan.jsonl") as writer:
+        for item in fetch_plan.fetch + fetch_plan.skipped:
+            writer.write(item.to_dict())
+    planned = set(int(i) for i in fetch_plan.order())
+    _say(quiet, f"plan: fetch {len(planned)} of {len(test)} URLs ({budget_fraction:.0%} "
+               "budget, best expected gain per fetch first) -> plan.jsonl")
+    results, fetch_report = _fetch_from_farm(records, [k.url for k in test_keys], out, quiet)
+    verdicts, fused = _night_verdicts(bundle, test_keys, proba, results, planned)
     with open_writer(out / "verdicts.jsonl") as writer:
         for v in verdicts:
             writer.write(v.to_dict())
-    needs = sum(v.needs_fetch for v in verdicts)
-    fetch_report = _fetch_stage(records, verdicts, out, max_fetches, quiet)
-    examples = [model.explain(keys[i], top=5, n_classes=1).to_dict() for i in split.test[:5]]
+    y = np.array([model.classes_.index(labels[i]) for i in test])
+    cascade_proba = proba.copy()
+    rows = sorted(planned)
+    cascade_proba[rows] = fused[rows]
+    w = np.array(test_counts, dtype=np.float64)
+    gain = bundle.cost_model.expected_gain(proba, domains)["gain"]
+    rep = build_report(y, proba, fused, gain, model.classes_, costs=taxonomy.costs(),
+                       counts=w, operating_budget=budget_fraction,
+                       title="cascade demo: what each fetch budget buys",
+                       context={"scenario": "Tallowmere Rail Cooperative (invented)",
+                                "model": bundle.version, "held-out URLs": len(test),
+                                "weighted by": "lookup counts",
+                                "planner": "cost model (value of information)"})
+    paths = write_report(rep, out / "budget-report")
+
+    def acc(p: np.ndarray, weights: np.ndarray | None = None) -> float:
+        right = (p.argmax(axis=1) == y).astype(float)
+        return round(float(np.average(right, weights=weights)), 4)
+
     headline = {
         "urls": len(records),
-        "test_rows": len(split.test),
+        "test_rows": len(test),
         "url_model_accuracy": metrics["accuracy"],
         "url_model_macro_f1": metrics["macro_f1"],
         "url_model_ece_15": metrics["ece_15"],
-        "accuracy_weighted_by_lookups": metrics.get("weighted", {}).get("accuracy"),
-        "share_marked_needs_fetch": round(needs / len(verdicts), 4),
-        "fetched": fetch_report["fetched"],
+        "fetched_by_plan": len(planned),
+        "cascade_accuracy": acc(cascade_proba),
+        "cascade_accuracy_weighted_by_lookups": acc(cascade_proba, w),
+        "url_only_accuracy_weighted_by_lookups": acc(proba, w),
+        "fetch_all_accuracy": acc(fused),
+        "budget_for_90pct_of_fetch_all_gain": rep["budget_for_gain_share"]["planner"]["90%"],
         "fetch_outcomes": fetch_report["outcomes"],
+        "train_seconds": round(train_s, 1),
         "seconds": round(time.perf_counter() - started, 1),
     }
     report = {"scenario": "Tallowmere Rail Cooperative (invented)", "seed": seed,
-              "taxonomy": taxonomy.name, "model_version": model.version,
+              "taxonomy": taxonomy.name, "model_version": bundle.version,
               "headline": headline, "metrics": metrics, "fetch": fetch_report,
-              "explain_examples": examples}
+              "budget_table": rep["budget_table"], "stacking": bundle.report,
+              "explain_examples": [model.explain(k, top=5, n_classes=1).to_dict()
+                                   for k in test_keys[:5]]}
     (out / "report.json").write_text(json.dumps(report, indent=2, ensure_ascii=False) + "\n",
                                      encoding="utf-8")
     (out / "summary.md").write_text(_summary_markdown(report), encoding="utf-8")
-    _say(quiet, "wrote verdicts.jsonl, report.json, summary.md")
+    _say(quiet, f"wrote verdicts.jsonl, report.json, summary.md, {paths['html']}")
     return report
 
 
-def _fetch_stage(records: list, verdicts: list, out: Path, max_fetches: int,
-                 quiet: bool) -> dict[str, Any]:
-    """Fetch the least confident URLs from the loopback site farm through the sandboxed
-    fetcher (the farm plays every scenario site; the address guard's only hole is the
-    farm's 127.0.0.1). The page-text stage that reads them comes in a later release."""
+def _night_verdicts(bundle: Any, keys: list, proba: np.ndarray, results: dict,
+                    planned: set[int]) -> tuple[list[Verdict], np.ndarray]:
+    """The night's verdicts (fused where the plan fetched, else the URL model's with the
+    reason), and the fused probabilities of every row (for measuring other budgets)."""
+    from cascade.extract import extract_fetch
+    from cascade.models.text_features import page_word_count
+
+    fused = proba.copy()
+    ok_rows = [i for i, k in enumerate(keys) if results.get(k.url) is not None
+               and results[k.url].ok]
+    if ok_rows:
+        pages = [extract_fetch(results[keys[i].url]) for i in ok_rows]
+        pp = bundle.page_model.predict_proba(pages)
+        words = np.array([page_word_count(p) for p in pages])
+        fused[ok_rows] = bundle.fusion.predict_proba(proba[ok_rows], pp, words)
+    classes = bundle.classes
+    verdicts = []
+    for i, v in enumerate(url_verdicts([k.url for k in keys], proba, classes, bundle.version)):
+        if i not in planned:
+            verdicts.append(replace(v, needs_fetch=False, reason="budget-exhausted"
+                                    if v.needs_fetch else v.reason))
+            continue
+        result = results.get(keys[i].url)
+        if result is None or not result.ok:
+            outcome = "none" if result is None else str(result.outcome)
+            verdicts.append(replace(v, needs_fetch=False, reason=f"fetch:{outcome}"))
+            continue
+        order = np.argsort(-fused[i])[:3]
+        verdicts.append(replace(v, category=classes[order[0]],
+                                confidence=float(fused[i][order[0]]),
+                                top=tuple((classes[j], float(fused[i][j])) for j in order),
+                                stage="page", needs_fetch=False, reason="fused"))
+    return verdicts, fused
+
+
+def _fetch_from_farm(records: list, urls: list[str], out: Path,
+                     quiet: bool) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Fetch ``urls`` from the loopback site farm through the sandboxed fetcher (the farm
+    plays every scenario site; the address guard's only hole is the farm's 127.0.0.1)."""
     import asyncio
     from collections import Counter
 
     from cascade.fetch import Fetcher, FetchPolicy
     from cascade.scenario.site_farm import SiteFarm
 
-    order = sorted(range(len(verdicts)), key=lambda i: verdicts[i].confidence)
-    chosen = [i for i in order if verdicts[i].needs_fetch][:max_fetches]
     outcomes: Counter[str] = Counter()
+    results: dict[str, Any] = {}
     with SiteFarm(records) as farm:
         policy = FetchPolicy(ports=(farm.port,), allow_networks=("127.0.0.1/32",),
                              per_host_delay_s=0.0, deadline_s=5.0)
+        back: dict[str, str] = {}
 
         def local(url: str) -> str:
             key = normalize(url)
-            return f"http://{key.host}:{farm.port}{key.path}" + (
+            target = f"http://{key.host}:{farm.port}{key.path}" + (
                 f"?{key.query}" if key.query else "")
+            back[target] = url
+            return target
 
         async def run() -> float:
             started = time.perf_counter()
             async with Fetcher(policy, farm.resolver()) as fetcher:
                 with open_writer(out / "fetches.jsonl") as writer:
-                    async for result in fetcher.fetch_many(
-                            [local(verdicts[i].url) for i in chosen]):
+                    async for result in fetcher.fetch_many([local(u) for u in urls]):
                         outcomes[str(result.outcome)] += 1
+                        results[back.get(result.url, result.url)] = result
                         row = result.to_dict(with_text=False)
                         row["text_chars"] = len(result.text or "")
                         writer.write(row)
             return time.perf_counter() - started
 
         seconds = asyncio.run(run())
-    _say(quiet, f"fetched the {len(chosen)} least confident URLs from the loopback site farm "
-               f"in {seconds:.1f}s -> fetches.jsonl")
-    return {"fetched": len(chosen), "outcomes": dict(outcomes),
-            "pages_per_s": round(len(chosen) / seconds, 1) if seconds else None}
+    _say(quiet, f"fetched {len(urls)} held-out URLs from the loopback site farm in "
+               f"{seconds:.1f}s -> fetches.jsonl (all of them, so the report can measure "
+               "every budget)")
+    return results, {"fetched": len(urls), "outcomes": dict(outcomes),
+                     "pages_per_s": round(len(urls) / seconds, 1) if seconds else None}
 
 
 def _summary_markdown(report: dict[str, Any]) -> str:
     h = report["headline"]
     m = report["metrics"]
     lines = [
-        "# cascade demo: URL-model stage",
+        "# cascade demo: one night of the cascade",
         "",
         f"Scenario: {report['scenario']}, seed {report['seed']}; model {report['model_version']}.",
         "",
@@ -140,19 +243,29 @@ def _summary_markdown(report: dict[str, Any]) -> str:
         "| --- | --- |",
         f"| URLs in the invented log | {h['urls']} |",
         f"| held-out URLs (new domains after the time cut) | {h['test_rows']} |",
-        f"| accuracy | {h['url_model_accuracy']:.4f} |",
-        f"| macro-F1 | {h['url_model_macro_f1']:.4f} |",
-        f"| expected calibration error (15 bins) | {h['url_model_ece_15']:.4f} |",
-        f"| accuracy weighted by lookups | {h['accuracy_weighted_by_lookups'] or 0:.4f} |",
-        f"| share of URLs the URL model is unsure of (< 0.8) | {h['share_marked_needs_fetch']} |",
-        f"| least confident URLs fetched from the loopback farm | {h['fetched']} |",
+        f"| URL model: accuracy / macro-F1 / ECE (15 bins) | {h['url_model_accuracy']:.4f} / "
+        f"{h['url_model_macro_f1']:.4f} / {h['url_model_ece_15']:.4f} |",
+        f"| URLs the plan fetched | {h['fetched_by_plan']} |",
+        f"| cascade accuracy (plan fetched, rest URL-only) | {h['cascade_accuracy']:.4f} |",
+        f"| same, weighted by lookups (URL-only: {h['url_only_accuracy_weighted_by_lookups']:.4f})"
+        f" | {h['cascade_accuracy_weighted_by_lookups']:.4f} |",
+        f"| accuracy if every held-out URL were fetched | {h['fetch_all_accuracy']:.4f} |",
+        f"| budget for 90% of the fetch-everything gain | "
+        f"{h['budget_for_90pct_of_fetch_all_gain']} |",
         f"| fetch outcomes | {h['fetch_outcomes']} |",
         "",
-        "## Accuracy by what the URL string says",
+        "## What each budget buys (accuracy weighted by lookups)",
         "",
-        "| URL signal | rows | accuracy |",
-        "| --- | --- | --- |",
+        "| budget | planner | lowest confidence | random | oracle |",
+        "| --- | --- | --- | --- | --- |",
     ]
+    for row in report["budget_table"]:
+        lines.append(f"| {row['budget']:.0%} | " + " | ".join(
+            f"{row[s]['accuracy']:.4f}" for s in ("planner", "lowest-confidence", "random",
+                                                   "oracle")) + " |")
+    lines += ["", "Plots and more figures: budget-report/report.html.", "",
+              "## URL model accuracy by what the URL string says", "",
+              "| URL signal | rows | accuracy |", "| --- | --- | --- |"]
     for signal, row in m["accuracy_by_url_signal"].items():
         lines.append(f"| {signal} | {row['rows']} | {row['accuracy']:.4f} |")
     lines += ["", "Opaque names and shared hosts are where the URL says nothing: those are the",

@@ -64,7 +64,10 @@ def _arrays(y: Any, url_proba: Any, fused_proba: Any, counts: Any, costs: Any
 def strategy_orders(y: Any, url_proba: Any, fused_proba: Any, gain: Any,
                     counts: Any = None, costs: Any = None, seed: int = 0
                     ) -> dict[str, np.ndarray]:
-    """Row order in which each strategy fetches. The oracle's order lists only its fixes."""
+    """Row order in which each strategy fetches. The oracle's order lists only its fixes.
+
+    ``gain`` is the cost model's expected gain per lookup; the planner ranks by gain times
+    lookup count, as ``cascade.budget.plan`` does. Lowest-confidence ignores counts."""
     y, pu, pf, w, c = _arrays(y, url_proba, fused_proba, counts, costs)
     n = len(y)
     idx = np.arange(n)
@@ -73,7 +76,7 @@ def strategy_orders(y: Any, url_proba: Any, fused_proba: Any, gain: Any,
     delta = w * c[y] * ((pf.argmax(1) == y).astype(float) - (pu.argmax(1) == y))
     fixes = np.flatnonzero(delta > 0)
     return {
-        "planner": np.lexsort((idx, -gain)),
+        "planner": np.lexsort((idx, -gain * w)),
         "lowest-confidence": np.lexsort((idx, conf)),
         "random": np.random.default_rng(seed).permutation(n),
         "oracle": fixes[np.lexsort((fixes, -delta[fixes]))],

@@ -107,3 +107,14 @@ def test_report_json_and_self_contained_html(data, tmp_path) -> None:
     for fid in ("budget-accuracy", "budget-error", "risk-coverage", "roc", "reliability"):
         assert paths[fid].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert "policy owner" in page
+
+
+def test_planner_order_weights_gain_by_lookups(data) -> None:
+    y, pu, pf, gain = data
+    counts = np.ones(len(y))
+    positive = np.flatnonzero(gain > 0)
+    j = int(positive[np.argmin(gain[positive])])
+    counts[j] = 1e6  # the least promising URL still worth a fetch, looked up a million times
+    assert strategy_orders(y, pu, pf, gain, counts)["planner"][0] == j
+    assert strategy_orders(y, pu, pf, gain, counts)["lowest-confidence"][0] != j or \
+        pu[j].max() == pu.max(1).min()

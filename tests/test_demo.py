@@ -1,0 +1,33 @@
+"""The end-to-end demo on a small invented scenario: every stage runs and leaves its file,
+the plan keeps to its budget, and every verdict says which stage decided it and why."""
+
+from __future__ import annotations
+
+import json
+
+from cascade.cli import EXIT_OK, main
+
+
+def test_demo_runs_the_whole_cascade(tmp_path) -> None:
+    out = tmp_path / "demo"
+    code = main(["--quiet", "demo", "--out", str(out), "--sites", "80", "--budget", "0.25"])
+    assert code == EXIT_OK
+    for name in ("telemetry.csv", "plan.jsonl", "fetches.jsonl", "verdicts.jsonl",
+                 "report.json", "summary.md", "budget-report/report.html",
+                 "model/model.json", "model/page/model.json", "model/fusion/model.json",
+                 "model/cost/model.json"):
+        assert (out / name).is_file(), name
+    report = json.loads((out / "report.json").read_text())
+    h = report["headline"]
+    plan = [json.loads(line) for line in (out / "plan.jsonl").read_text().splitlines()]
+    assert len(plan) == h["test_rows"]
+    assert sum(r["fetch"] for r in plan) == h["fetched_by_plan"] <= int(0.25 * h["test_rows"])
+    verdicts = [json.loads(line) for line in (out / "verdicts.jsonl").read_text().splitlines()]
+    fused = [v for v in verdicts if v["stage"] == "page"]
+    assert len(fused) <= h["fetched_by_plan"]
+    assert {v["reason"] for v in verdicts} <= {"fused", "budget-exhausted", "confident",
+                                              "under-threshold"} | {
+        v["reason"] for v in verdicts if v["reason"].startswith("fetch:")}
+    # Every fetch stayed on the loopback farm and none was refused by the address guard.
+    fetches = [json.loads(line) for line in (out / "fetches.jsonl").read_text().splitlines()]
+    assert all(f["outcome"] == "ok" for f in fetches)
