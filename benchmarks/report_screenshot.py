@@ -58,7 +58,7 @@ CSP = ("default-src 'none'; img-src data:; style-src 'unsafe-inline'; "
 # anything asynchronous after it (e.g. img.decode()) can lose the race with --dump-dom once
 # the virtual time budget has run out. performance.getEntriesByType("resource") is W3C
 # Resource Timing, which lists failed fetches too.
-PROBE = """<meta http-equiv="Content-Security-Policy" content="%(csp)s">
+PROBE = """<meta http-equiv="Content-Security-Policy" content="__CSP__">
 <script>(function(){
 var errors=[];
 window.addEventListener("error",function(e){var t=e.target;
@@ -77,7 +77,7 @@ window.addEventListener("load",function(){
  var res=performance.getEntriesByType("resource").map(function(r){return r.name;})
   .filter(function(u){return !/^(data|blob):/.test(u);});
  var b=document.body,v=document.createElement("script");
- v.type="application/json";v.id="%(vid)s";
+ v.type="application/json";v.id="__VERDICT_ID__";
  v.textContent=JSON.stringify({images:shown,errors:errors,resources:res,
   page_height:Math.ceil(b.getBoundingClientRect().bottom+scrollY
    +parseFloat(getComputedStyle(b).marginBottom)),
@@ -85,7 +85,7 @@ window.addEventListener("load",function(){
   .replace(/</g,"\\\\u003c");
  document.body.appendChild(v);});
 })();</script>
-""" % {"csp": CSP, "vid": VERDICT_ID}
+""".replace("__CSP__", CSP).replace("__VERDICT_ID__", VERDICT_ID)
 
 _CONSOLE = re.compile(r':CONSOLE[:(]\d+\)?\] "(.*)", source: (.*)$', re.M)
 _EXTERNAL = re.compile(r"""(?:src|href)\s*=\s*["']?\s*(?:https?:)?//|url\(\s*["']?(?:https?:)?//""",
@@ -184,6 +184,8 @@ def check_report(html_path: str | Path, png_path: str | Path, *, chromium: str |
                 errors.append("no verdict in the DOM: the load event never fired in time")
                 break
             verdict = json.loads(m.group(1))
+            # The PNG is the window height of page (innerHeight is a little less in
+            # new headless), so the page must fit within size[1] CSS pixels.
             height = int(verdict.get("page_height", 0))
             if height <= size[1] or size[1] >= MAX_HEIGHT:
                 break

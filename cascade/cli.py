@@ -446,10 +446,14 @@ def cmd_plan(args: argparse.Namespace) -> int:
     if bundle.cost_model is None:
         _eprint("plan: this model has no cost model (train with pages); ranking by "
                 "the URL model's confidence, weighted by lookups")
-    keys = [k for _, k in keyed]
+    merged: dict[str, list] = {}  # one entry per normalized URL; lookup counts summed
+    for rec, key in keyed:
+        entry = merged.setdefault(key.url, [key, 0])
+        entry[1] += rec.count
+    keys = [k for k, _ in merged.values()]
     proba = bundle.url_model.predict_proba(keys) if keys else None
     result = plan([k.url for k in keys], proba, bundle.cost_model, budget,
-                  counts=[rec.count for rec, _ in keyed],
+                  counts=[c for _, c in merged.values()],
                   domains=[k.registered_domain or k.host for k in keys],
                   fetch_costs=_fetch_costs(args.fetch_history), min_gain=args.min_gain)
     by_reason: dict[str, int] = {}

@@ -293,7 +293,8 @@ def _figures(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
     classes = [c for c in rep["classes"] if c in rep["roc"].get("cascade", {})]
     cols = 4
     rows = max(1, math.ceil(len(classes) / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(8.4, 2.0 * rows + 0.4), squeeze=False)
+    fig, axes = plt.subplots(rows, cols, figsize=(8.8, 2.3 * rows + 0.8), squeeze=False,
+                             sharex=True, sharey=True, layout="constrained")
     for ax in axes.flat[len(classes):]:
         ax.axis("off")
     for ax, cls in zip(axes.flat, classes, strict=False):
@@ -306,9 +307,13 @@ def _figures(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
         ax.set_xscale("log")
         ax.set_xlim(1e-5, 1)
         ax.set_ylim(0, 1.02)
+        ax.set_xticks([1e-4, 1e-2, 1])
         ax.set_title(cls, fontsize=8)
-        ax.tick_params(labelsize=6)
-    axes.flat[0].legend(frameon=False, fontsize=6, loc="lower right")
+        ax.tick_params(labelsize=7)
+    fig.supxlabel("false-positive rate (log scale)", fontsize=8)
+    fig.supylabel("true-positive rate", fontsize=8)
+    handles, labels = axes.flat[0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="outside upper center", ncols=2, frameon=False, fontsize=8)
     keep(fig, "roc", f"Per-category ROC (one vs rest, log FPR); dotted line at FPR {ROC_FPR:g}.")
     fig, ax = plt.subplots(figsize=(4.4, 4.0))
     ax.plot([0, 1], [0, 1], color="#999999", lw=0.8, ls=":")
@@ -336,7 +341,7 @@ td,th{padding:.2rem .6rem;border-bottom:1px solid #ddd;text-align:right}
 th{background:#eef3f1}
 td:first-child,th:first-child{text-align:left}
 .best{font-weight:bold;color:#1b6b5a}
-figure{margin:1rem 0;background:#fff;padding:.5rem;border:1px solid #e4e1da}
+figure{margin:1rem 0;background:#fff;padding:.5rem;border:1px solid #e4e1da;text-align:center}
 figcaption{font-size:.85rem;color:#555}
 img{max-width:100%}
 .note{font-size:.85rem;color:#555;border-left:3px solid #c2711b;padding-left:.6rem}

@@ -112,3 +112,16 @@ def test_report_writes_html_and_json(trained, tmp_path) -> None:
     assert rep["context"]["planner"] == "cost model"
     assert rep["context"]["rows with a page"] == 480
     assert (tmp_path / "rep" / "report.html").stat().st_size > 10_000
+
+
+def test_plan_merges_repeated_urls_and_sums_their_lookups(trained, tmp_path, capsys) -> None:
+    root, records = trained
+    url = records[3].url
+    (tmp_path / "day.csv").write_text(f"url,count\n{url},2\n{url},5\nnot a url,1\n")
+    code = main(["plan", "-m", str(root / "model"), "--budget", "100%", "--all",
+                 "-i", str(tmp_path / "day.csv")])
+    assert code == 3  # done, one bad line skipped and reported
+    captured = capsys.readouterr()
+    rows = [json.loads(line) for line in captured.out.splitlines()]
+    assert len(rows) == 1
+    assert json.loads(captured.err.strip().splitlines()[-1])["urls"] == 1
