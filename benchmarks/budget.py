@@ -52,8 +52,12 @@ def _costs(name: str, classes: list[str]) -> np.ndarray:
 
 
 def _curves(y, pu, pf, gain, costs, counts, seed: int) -> dict[str, dict]:
-    orders = strategy_orders(y, pu, pf, gain, counts, costs, seed=seed)
-    return {s: budget_curve(y, pu, pf, orders[s], FINE, counts, costs) for s in STRATEGIES}
+    out: dict[str, dict] = {s: {} for s in STRATEGIES}
+    for metric in ("accuracy", "cost_weighted_error"):  # the oracle's order is per metric
+        orders = strategy_orders(y, pu, pf, gain, counts, costs, seed=seed, metric=metric)
+        for s in STRATEGIES:
+            out[s][metric] = budget_curve(y, pu, pf, orders[s], FINE, counts, costs)[metric]
+    return out
 
 
 def _demo_counts(urls: np.ndarray) -> np.ndarray:
@@ -103,8 +107,8 @@ def run_split(path: Path, seeds: int, by_lookups: bool = False,
             row[s] = round(plain[s][metric][j], 4)
         diffs = [sign * (r["planner"][metric][j] - r["lowest-confidence"][metric][j])
                  for r in boot]
-        row["planner_minus_lowconf"] = {"plain": round(row["planner"] - row["lowest-confidence"],
-                                                       4),
+        row["planner_minus_lowconf"] = {"plain": round(sign * (row["planner"] -
+                                                               row["lowest-confidence"]), 4),
                                         "boot_mean": round(float(np.mean(diffs)), 4),
                                         "boot_min": round(float(np.min(diffs)), 4),
                                         "boot_max": round(float(np.max(diffs)), 4)}
@@ -113,18 +117,23 @@ def run_split(path: Path, seeds: int, by_lookups: bool = False,
         table.append(row)
     fine_diff = sign * np.array([np.array(r["planner"][metric]) -
                                  np.array(r["lowest-confidence"][metric]) for r in boot])
-    gain_all = plain["planner"]["accuracy"][-1] - plain["planner"]["accuracy"][0]
-    shares = {s: {f"{int(q * 100)}%": budget_for_share(FINE, plain[s]["accuracy"], q, gain_all)
+    def score(curve: dict) -> np.ndarray:  # higher is better, in the compared metric
+        return sign * np.array(curve[metric])
+
+    gain_all = score(plain["planner"])[-1] - score(plain["planner"])[0]
+    shares = {s: {f"{int(q * 100)}%": budget_for_share(FINE, score(plain[s]), q, gain_all)
                   for q in (0.9, 0.95)} for s in STRATEGIES}
-    boot_share = [budget_for_share(FINE, r["planner"]["accuracy"], 0.9,
-                                   r["planner"]["accuracy"][-1] - r["planner"]["accuracy"][0])
-                  for r in boot]
+    boot_share = [budget_for_share(FINE, score(r["planner"]), 0.9) for r in boot]
     return {"objective": objective, "metric": metric,
             "rows": int(n), "stacking_rows": int(on), "classes": len(classes),
             "weighted_by_lookups": counts is not None,
             "url_only_accuracy": round(plain["planner"]["accuracy"][0], 4),
             "fetch_all_accuracy": round(plain["planner"]["accuracy"][-1], 4),
             "oracle_ceiling": round(max(plain["oracle"]["accuracy"]), 4),
+            f"url_only_{metric}": round(plain["planner"][metric][0], 4),
+            f"fetch_all_{metric}": round(plain["planner"][metric][-1], 4),
+            f"oracle_best_{metric}": round(float(max(sign * np.array(plain["oracle"][metric])))
+                                           * sign, 4),
             "table": table, "budget_for_gain_share": shares,
             "planner_budget_for_90pct_boot": boot_share,
             "fine_grid_planner_minus_lowconf": {

@@ -33,6 +33,7 @@ from cascade.errors import ModelFileError, NotFittedError
 from cascade.models.model_files import load_model_dir, save_model_dir
 
 __all__ = [
+    "MIN_COST_ROWS",
     "OUTCOMES",
     "Budget",
     "confidence_gain",
@@ -46,6 +47,8 @@ __all__ = [
 ]
 
 KIND = "cost-model"
+#: Fewest held-out rows a cost model is fitted on.
+MIN_COST_ROWS = 10
 #: The four outcomes of a fetch, as (URL verdict right?, fused verdict right?).
 OUTCOMES = ("kept-right", "broke", "fixed", "kept-wrong")
 _FLOOR = 1e-12
@@ -166,12 +169,16 @@ class FetchCosts:
                      **defaults: float) -> FetchCosts:
         """Rows with ``domain``, ``ok`` (bool), ``bytes`` and ``seconds`` (or ``ms``)."""
         agg: dict[str, list[float]] = {}
-        for row in rows:
+        for n, row in enumerate(rows, 1):
             domain = str(row.get("domain") or "")
             ok = bool(row.get("ok"))
             nbytes = float(row.get("bytes") or 0.0)
             secs = float(row["seconds"]) if row.get("seconds") is not None else \
                 float(row.get("ms") or 0.0) / 1000.0
+            if not (math.isfinite(nbytes) and math.isfinite(secs) and nbytes >= 0
+                    and secs >= 0):
+                raise ValueError(f"fetch history row {n}: bytes and time must be finite "
+                                 f"numbers >= 0, got bytes={nbytes}, seconds={secs}")
             for key in (f"d:{domain}", f"s:{_suffix(domain)}", "all"):
                 a = agg.setdefault(key, [0.0, 0.0, 0.0, 0.0])
                 a[0] += 1
@@ -193,7 +200,10 @@ class FetchCosts:
                 (stat.seconds + k * prior[2]) / (stat.n + k))
 
     def estimate(self, domain: str) -> tuple[float, float, float]:
-        """(failure chance, expected bytes, expected seconds) of fetching from ``domain``."""
+        """(failure chance, expected bytes, expected seconds) of fetching from ``domain``.
+
+        Unknown domains take the figures of their top-level label (``uk`` for ``a.co.uk``),
+        then the overall ones."""
         base = (self.default_failure, self.default_bytes, self.default_seconds)
         overall = self._shrink(self.overall, base)
         suffix = self._shrink(self.suffixes.get(_suffix(domain)), overall)
@@ -201,6 +211,7 @@ class FetchCosts:
 
 
 def _suffix(domain: str) -> str:
+    """The top-level label: a coarse group for domains with no history of their own."""
     return domain.rsplit(".", 1)[-1] if domain else ""
 
 
@@ -322,9 +333,13 @@ class CostModel:
         if len(pu) < 10:
             raise ValueError(f"a cost model needs at least 10 held-out rows, got {len(pu)}")
         k = pu.shape[1]
-        self.costs_ = np.ones(k) if costs is None else np.asarray(costs, dtype=np.float64)
-        if self.costs_.shape != (k,) or (self.costs_ <= 0).any():
-            raise ValueError(f"costs must be {k} positive numbers")
+        if k < 2 or not (np.isfinite(pu).all() and np.isfinite(pf).all()):
+            raise ValueError("probabilities must be finite, over at least two classes")
+        if y.min() < 0 or y.max() >= k:
+            raise ValueError(f"y holds a class index outside 0..{k - 1}")
+        cost_vec = np.ones(k) if costs is None else np.asarray(costs, dtype=np.float64)
+        if cost_vec.shape != (k,) or not np.isfinite(cost_vec).all() or (cost_vec <= 0).any():
+            raise ValueError(f"costs must be {k} finite positive numbers")
         outcome = fetch_outcomes(y, pu, pf)
         history = None
         if domains is not None:
@@ -332,25 +347,28 @@ class CostModel:
         X = _url_features(pu, self._domain_features(pu, domains, history,
                                                     leave_out=pf.argmax(axis=1),
                                                     dropout=self.domain_dropout))
-        self.mean_ = X.mean(axis=0)
-        self.scale_ = np.where(X.std(axis=0) > 1e-9, X.std(axis=0), 1.0)
-        Xs = (X - self.mean_) / self.scale_
+        mean = X.mean(axis=0)
+        scale = np.where(X.std(axis=0) > 1e-9, X.std(axis=0), 1.0)
+        Xs = (X - mean) / scale
         present = np.unique(outcome)
-        self.coef_ = np.zeros((len(OUTCOMES), X.shape[1]))
-        self.intercept_ = np.full(len(OUTCOMES), -30.0)  # outcomes never seen stay ~0
+        coef = np.zeros((len(OUTCOMES), X.shape[1]))
+        intercept = np.full(len(OUTCOMES), -30.0)  # outcomes never seen stay ~0
         started = time.perf_counter()
         if present.size == 1:
-            self.intercept_[present[0]] = 0.0
+            intercept[present[0]] = 0.0
         else:
             clf = LogisticRegression(C=self.C, max_iter=1000, random_state=self.seed)
             clf.fit(Xs, outcome)
             if present.size == 2:  # binary: sklearn keeps one row for the second class
-                self.coef_[present[1]] = clf.coef_[0]
-                self.intercept_[present[1]] = clf.intercept_[0]
-                self.intercept_[present[0]] = 0.0
+                coef[present[1]] = clf.coef_[0]
+                intercept[present[1]] = clf.intercept_[0]
+                intercept[present[0]] = 0.0
             else:
-                self.coef_[present] = clf.coef_
-                self.intercept_[present] = clf.intercept_
+                coef[present] = clf.coef_
+                intercept[present] = clf.intercept_
+        # learned state is assigned only once everything succeeded
+        self.costs_, self.mean_, self.scale_ = cost_vec, mean, scale
+        self.coef_, self.intercept_ = coef, intercept
         self.n_classes_ = k
         self.training_ = {"rows": int(len(pu)),
                           "outcome_shares": {OUTCOMES[i]: round(float((outcome == i).mean()), 4)
@@ -411,13 +429,16 @@ class CostModel:
             model.n_classes_ = int(meta["n_classes"])
             for name in ("coef", "intercept", "mean", "scale", "costs"):
                 setattr(model, f"{name}_", arrays[name].astype(np.float64))
-            n_feat = model.mean_.shape[0]
-            if model.coef_.shape != (len(OUTCOMES), n_feat) or \
-                    model.costs_.shape != (model.n_classes_,):
+            k = model.n_classes_
+            n_feat = 5 + k + (2 if model.use_domains else 0)
+            if (model.coef_.shape != (len(OUTCOMES), n_feat)
+                    or model.mean_.shape != (n_feat,) or model.scale_.shape != (n_feat,)
+                    or model.intercept_.shape != (len(OUTCOMES),)
+                    or model.costs_.shape != (k,)):
                 raise ModelFileError(f"{path}: cost model arrays have the wrong shapes")
             model.training_ = meta.get("training", {})
-            links = {str(a): str(b) for a, b in meta.get("links", {}).items()}
-        except (KeyError, TypeError, ValueError) as exc:
+            links = {str(a): str(b) for a, b in dict(meta.get("links", {})).items()}
+        except (KeyError, TypeError, ValueError, AttributeError, IndexError) as exc:
             if isinstance(exc, ModelFileError):
                 raise
             raise ModelFileError(f"{path}: model.json is missing or has a bad field: {exc}") \
@@ -500,6 +521,7 @@ def plan(
     fetch_costs: FetchCosts | None = None,
     history: DomainHistory | None = None,
     min_gain: float = 0.0,
+    costs: np.ndarray | None = None,
 ) -> Plan:
     """Choose which of ``urls`` to fetch: best expected gain per unit of cost first.
 
@@ -511,7 +533,9 @@ def plan(
 
     Without a cost model (a URL-only model directory) the gain falls back to the calibrated
     chance that the URL verdict is wrong times the expected cost of that mistake, i.e.
-    lowest-confidence-first weighted by cost and lookups.
+    lowest-confidence-first weighted by cost (``costs``, per category; default all 1)
+    and lookups. ``history`` (what the store knows of each domain) feeds the cost model's
+    domain features; without it every URL is a first visit.
     """
     n = len(urls)
     pu = np.atleast_2d(np.asarray(url_proba, dtype=np.float64)) if n else np.zeros((0, 1))
@@ -521,15 +545,15 @@ def plan(
     if w.shape != (n,) or (w < 0).any() or not np.isfinite(w).all():
         raise ValueError("counts must be one finite number >= 0 per URL")
     doms = list(domains) if domains is not None else [""] * n
-    costs = fetch_costs or FetchCosts()
+    per_fetch = fetch_costs or FetchCosts()
     if n and cost_model is not None:
         est = cost_model.expected_gain(pu, doms if domains is not None else None, history)
     elif n:
-        est = confidence_gain(pu, np.ones(pu.shape[1]))
+        est = confidence_gain(pu, np.ones(pu.shape[1]) if costs is None else costs)
     else:
         est = {k: np.zeros(0) for k in ("gain", "p_wrong", "p_fix")}
     fail, exp_bytes, exp_secs = (np.array(v, dtype=np.float64).reshape(n) for v in
-                                 zip(*[costs.estimate(d) for d in doms], strict=True)) \
+                                 zip(*[per_fetch.estimate(d) for d in doms], strict=True)) \
         if n else (np.zeros(0),) * 3
     value = est["gain"] * (1.0 - fail) * w
     count_limit = budget.count_limit(n)

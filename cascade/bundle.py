@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-from cascade.budget import CostModel
+from cascade.budget import MIN_COST_ROWS, CostModel
 from cascade.errors import ModelFileError
 from cascade.fuse import Fusion
 from cascade.models.calibration import fit_temperature, softmax
@@ -188,7 +188,7 @@ def fit_bundle(
             "url_accuracy": float((pu.argmax(1) == y[both]).mean()),
             "page_accuracy": float((pp.argmax(1) == y[both]).mean()),
             "fused_accuracy": float((fused.argmax(1) == y[both]).mean()),
-        },
+        } if both.any() else None,
         "temperatures": {"url": url_t, "page": page_t},
     })
     say(f"final page model on {page_rows.size} pages")
@@ -203,10 +203,15 @@ def fit_bundle(
     rows = np.flatnonzero(both)
     held_out = {"rows": rows, "y": y[both], "url_proba": pu, "page_proba": pp,
                 "page_words": words, "fused_proba": fused}
-    say(f"cost model on {int(both.sum())} out-of-fold rows")
-    cost_model = CostModel(seed=seed).fit(pu, fused, y[both], costs=taxonomy.costs(),
-                                          domains=[group_list[int(i)] for i in rows])
-    report["cost_model"] = cost_model.training_
+    cost_model = None
+    if both.sum() >= MIN_COST_ROWS:
+        say(f"cost model on {int(both.sum())} out-of-fold rows")
+        cost_model = CostModel(seed=seed).fit(pu, fused, y[both], costs=taxonomy.costs(),
+                                              domains=[group_list[int(i)] for i in rows])
+        report["cost_model"] = cost_model.training_
+    else:  # e.g. every page on one domain: no out-of-fold rows to learn fetch value from
+        report["cost_model"] = (f"not fitted: {int(both.sum())} out-of-fold rows with a page "
+                                f"(needs {MIN_COST_ROWS}); the planner ranks by confidence")
     return ModelBundle(url_model, page_model, fusion, report=report, held_out=held_out,
                        cost_model=cost_model)
 

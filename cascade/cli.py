@@ -414,28 +414,41 @@ def _budget(args: argparse.Namespace) -> Any:
     return Budget.parse(args.budget, args.budget_bytes, args.budget_seconds)
 
 
-def _fetch_costs(path: str | None) -> Any:
+def _fetch_costs(path: str | None, stats: ReadStats) -> Any:
+    """Per-domain fetch costs from earlier ``cascade fetch`` output (JSON Lines with
+    ``url``, ``outcome``, ``bytes_read``, ``elapsed_ms``). A row without those, or with a
+    negative or non-finite figure, is a bad line: counted, sampled, skipped."""
+    import math
+
     from cascade.budget import FetchCosts
 
     if not path:
         return None
     rows = []
-    stats = ReadStats()
-    for rec in read_records(path, fmt="jsonl" if path.endswith((".jsonl", ".jsonl.gz"))
-                            else None, stats=stats):
+    for rec in read_records(path, fmt="jsonl", stats=stats):
         extra = rec.extra
         try:
             key = normalize(rec.url)
-        except InvalidURL:
+            if "outcome" not in extra or "bytes_read" not in extra or \
+                    "elapsed_ms" not in extra:
+                raise ValueError("not a fetch result (needs outcome, bytes_read, elapsed_ms)")
+            nbytes, ms = float(extra["bytes_read"]), float(extra["elapsed_ms"])
+            if not (math.isfinite(nbytes) and math.isfinite(ms) and nbytes >= 0 and ms >= 0):
+                raise ValueError("bytes_read and elapsed_ms must be finite numbers >= 0")
+        except (InvalidURL, ValueError, TypeError) as exc:
+            stats.records -= 1
+            stats.add_bad(rec.line_no, rec.url, f"fetch history: {exc}")
             continue
         rows.append({"domain": key.registered_domain or key.host,
-                     "ok": str(extra.get("outcome", "ok")) == "ok",
-                     "bytes": float(extra.get("bytes_read") or extra.get("bytes") or 0),
-                     "ms": float(extra.get("elapsed_ms") or extra.get("ms") or 0)})
+                     "ok": str(extra["outcome"]) == "ok", "bytes": nbytes, "ms": ms})
+    if not rows:
+        raise CascadeError(f"{path}: no usable fetch results (is it 'cascade fetch' output?)")
     return FetchCosts.from_history(rows)
 
 
 def cmd_plan(args: argparse.Namespace) -> int:
+    import numpy as np
+
     from cascade.budget import plan
     from cascade.bundle import ModelBundle
 
@@ -452,10 +465,14 @@ def cmd_plan(args: argparse.Namespace) -> int:
         entry[1] += rec.count
     keys = [k for k, _ in merged.values()]
     proba = bundle.url_model.predict_proba(keys) if keys else None
+    taxonomy = bundle.url_model.taxonomy_
+    costs = np.array([taxonomy.categories[taxonomy.index(c)].cost for c in bundle.classes])
+    history_stats = ReadStats()
     result = plan([k.url for k in keys], proba, bundle.cost_model, budget,
                   counts=[c for _, c in merged.values()],
                   domains=[k.registered_domain or k.host for k in keys],
-                  fetch_costs=_fetch_costs(args.fetch_history), min_gain=args.min_gain)
+                  fetch_costs=_fetch_costs(args.fetch_history, history_stats),
+                  min_gain=args.min_gain, costs=costs)
     by_reason: dict[str, int] = {}
     with open_writer(args.output) as out:
         for item in result.fetch:
@@ -464,8 +481,11 @@ def cmd_plan(args: argparse.Namespace) -> int:
             by_reason[item.reason] = by_reason.get(item.reason, 0) + 1
             if args.all:
                 out.write(item.to_dict())
+    extra: dict[str, Any] = {}
+    if args.fetch_history:
+        extra["fetch_history"] = history_stats.to_dict()
     return _finish(_summary(stats, budget=budget.describe(), **result.totals,
-                            left_out=by_reason, model_version=bundle.version), stats,
+                            left_out=by_reason, model_version=bundle.version, **extra), stats,
                    args.quiet)
 
 
@@ -503,12 +523,12 @@ def cmd_report(args: argparse.Namespace) -> int:
         gain = bundle.cost_model.expected_gain(
             pu, [k.registered_domain or k.host for k in keys])["gain"]
         planner = "cost model"
-    else:
-        gain = confidence_gain(pu, np.ones(len(classes)))["gain"]
-        planner = "confidence (no cost model)"
-    weighted = any(c != 1 for c in counts)
     taxonomy = bundle.url_model.taxonomy_
     costs = np.array([taxonomy.categories[taxonomy.index(c)].cost for c in classes])
+    if bundle.cost_model is None:
+        gain = confidence_gain(pu, costs)["gain"]
+        planner = "confidence (no cost model)"
+    weighted = any(c != 1 for c in counts)
     rep = build_report(y, pu, pf, gain, classes, costs=costs,
                        counts=counts if weighted else None,
                        operating_budget=args.operating_budget,

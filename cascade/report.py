@@ -58,22 +58,41 @@ def _arrays(y: Any, url_proba: Any, fused_proba: Any, counts: Any, costs: Any
     c = np.ones(pu.shape[1]) if costs is None else np.asarray(costs, dtype=np.float64)
     if w.shape != y.shape or c.shape != (pu.shape[1],):
         raise ValueError("counts must be (n,) and costs (k,)")
+    if y.min() < 0 or y.max() >= pu.shape[1]:
+        raise ValueError(f"y holds a class index outside 0..{pu.shape[1] - 1}")
+    if not (np.isfinite(w).all() and (w >= 0).all() and w.sum() > 0):
+        raise ValueError("counts must be finite, >= 0, and not all 0")
+    if not (np.isfinite(c).all() and (c > 0).all()):
+        raise ValueError("costs must be finite positive numbers")
     return y, pu, pf, w, c
 
 
+def _fetched(fraction: float, n: int) -> int:
+    """URLs fetched at a budget share: rounded down, as ``Budget.count_limit`` does."""
+    f = float(fraction)
+    if not 0.0 <= f <= 1.0:
+        raise ValueError(f"a budget share must lie in [0, 1], got {fraction}")
+    return int(math.floor(f * n + 1e-9))
+
+
 def strategy_orders(y: Any, url_proba: Any, fused_proba: Any, gain: Any,
-                    counts: Any = None, costs: Any = None, seed: int = 0
-                    ) -> dict[str, np.ndarray]:
+                    counts: Any = None, costs: Any = None, seed: int = 0,
+                    metric: str = "accuracy") -> dict[str, np.ndarray]:
     """Row order in which each strategy fetches. The oracle's order lists only its fixes.
 
     ``gain`` is the cost model's expected gain per lookup; the planner ranks by gain times
-    lookup count, as ``cascade.budget.plan`` does. Lowest-confidence ignores counts."""
+    lookup count, as ``cascade.budget.plan`` does. Lowest-confidence ignores counts. The
+    oracle ranks its fixes by what each is worth to ``metric``: lookups for "accuracy",
+    lookups x cost of the true category for "cost_weighted_error"."""
     y, pu, pf, w, c = _arrays(y, url_proba, fused_proba, counts, costs)
     n = len(y)
     idx = np.arange(n)
     gain = np.asarray(gain, dtype=np.float64)
     conf = pu.max(axis=1)
-    delta = w * c[y] * ((pf.argmax(1) == y).astype(float) - (pu.argmax(1) == y))
+    if metric not in ("accuracy", "cost_weighted_error"):
+        raise ValueError(f"metric must be 'accuracy' or 'cost_weighted_error', not {metric!r}")
+    worth = w if metric == "accuracy" else w * c[y]
+    delta = worth * ((pf.argmax(1) == y).astype(float) - (pu.argmax(1) == y))
     fixes = np.flatnonzero(delta > 0)
     return {
         "planner": np.lexsort((idx, -gain * w)),
@@ -100,7 +119,7 @@ def budget_curve(y: Any, url_proba: Any, fused_proba: Any, order: Sequence[int],
     d_err = np.concatenate([[0.0], np.cumsum((cw * (fused_ok - url_ok))[order])]) / cw.sum()
     acc, err = [], []
     for f in fractions:
-        m = min(int(round(float(f) * n)), len(order))
+        m = min(_fetched(f, n), len(order))
         acc.append(base_acc + float(d_acc[m]))
         err.append(base_err - float(d_err[m]))
     return {"accuracy": acc, "cost_weighted_error": err}
@@ -143,26 +162,43 @@ def build_report(
     """Every number of the report as a JSON-ready dict (``write_report`` draws it)."""
     y, pu, pf, w, c = _arrays(y, url_proba, fused_proba, counts, costs)
     n, k = pu.shape
+    if len(classes) != k:
+        raise ValueError(f"{len(classes)} class names for {k} probability columns")
+    if int(seeds) < 1:
+        raise ValueError(f"seeds must be at least 1, got {seeds}")
+    budgets = [float(b) for b in budgets]
+    for b in [*budgets, operating_budget]:
+        _fetched(b, n)  # validates the share
     fine = np.round(np.arange(0, 101) / 100.0, 2)
-    curves: dict[str, Any] = {}
-    for name in STRATEGIES:
-        per_seed = []
-        for s in range(seeds if name == "random" else 1):
-            order = strategy_orders(y, pu, pf, gain, w, c, seed=s)[name]
-            per_seed.append(budget_curve(y, pu, pf, order, fine, w, c))
-        acc = np.mean([p["accuracy"] for p in per_seed], axis=0)
-        err = np.mean([p["cost_weighted_error"] for p in per_seed], axis=0)
-        curves[name] = {"accuracy": acc.tolist(), "cost_weighted_error": err.tolist()}
-        if name == "random":
-            curves[name]["accuracy_min"] = np.min([p["accuracy"] for p in per_seed], 0).tolist()
-            curves[name]["accuracy_max"] = np.max([p["accuracy"] for p in per_seed], 0).tolist()
-    table = []
-    for b in budgets:
-        j = int(round(b * 100))
-        row: dict[str, Any] = {"budget": b}
+
+    def curves_at(fractions: Sequence[float]) -> dict[str, Any]:
+        out: dict[str, Any] = {}
         for name in STRATEGIES:
-            row[name] = {"accuracy": round(curves[name]["accuracy"][j], 4),
-                         "cost_weighted_error": round(curves[name]["cost_weighted_error"][j], 4)}
+            per_seed = []
+            for s in range(seeds if name == "random" else 1):
+                row = {}
+                for metric in ("accuracy", "cost_weighted_error"):
+                    order = strategy_orders(y, pu, pf, gain, w, c, seed=s,
+                                            metric=metric)[name]
+                    row[metric] = budget_curve(y, pu, pf, order, fractions, w, c)[metric]
+                per_seed.append(row)
+            out[name] = {m: np.mean([p[m] for p in per_seed], axis=0).tolist()
+                         for m in ("accuracy", "cost_weighted_error")}
+            if name == "random":
+                out[name]["accuracy_min"] = np.min([p["accuracy"] for p in per_seed],
+                                                   0).tolist()
+                out[name]["accuracy_max"] = np.max([p["accuracy"] for p in per_seed],
+                                                   0).tolist()
+        return out
+
+    curves = curves_at(fine)
+    at_budgets = curves_at(budgets)
+    table = []
+    for j, b in enumerate(budgets):
+        row: dict[str, Any] = {"budget": b, "fetches": _fetched(b, n)}
+        for name in STRATEGIES:
+            row[name] = {m: round(at_budgets[name][m][j], 4)
+                         for m in ("accuracy", "cost_weighted_error")}
         table.append(row)
     all_fetch = curves["planner"]["accuracy"][-1]
     gain_all = all_fetch - curves["planner"]["accuracy"][0]
@@ -170,7 +206,7 @@ def build_report(
                                                           gain_all)
                      for q in (0.90, 0.95)} for name in STRATEGIES}
     orders = strategy_orders(y, pu, pf, gain, w, c)
-    m_op = int(round(operating_budget * n))
+    m_op = _fetched(operating_budget, n)
     at_op = _mixed(pu, pf, orders["planner"], m_op)
     views = {"url only": pu, f"planner at {operating_budget:.0%}": at_op, "fetch all": pf}
     coverage = {}
@@ -210,7 +246,7 @@ def build_report(
         "coverage_at_precision": coverage, "ece_15": ece, "per_class": per_class,
         "curves": {"budget": fine.tolist(), **curves},
         "risk_coverage": risk, "reliability": reliability,
-        "roc": _roc_points(y, {"url only": pu, "cascade": at_op}, classes),
+        "roc": _roc_points(y, {"url only": pu, "cascade": at_op}, classes, w),
     }
 
 
@@ -219,9 +255,10 @@ def _num(x: Any) -> float | None:
     return None if math.isnan(x) else round(x, 4)
 
 
-def _roc_points(y: np.ndarray, views: dict[str, np.ndarray], classes: Sequence[str]
-                ) -> dict[str, Any]:
-    """Per class, one-vs-rest ROC points (reference implementation: sklearn.metrics)."""
+def _roc_points(y: np.ndarray, views: dict[str, np.ndarray], classes: Sequence[str],
+                weight: np.ndarray) -> dict[str, Any]:
+    """Per class, one-vs-rest ROC points weighted by lookups, as the TPR table is
+    (reference implementation: sklearn.metrics.roc_curve)."""
     from sklearn.metrics import roc_curve
 
     out: dict[str, Any] = {}
@@ -231,7 +268,8 @@ def _roc_points(y: np.ndarray, views: dict[str, np.ndarray], classes: Sequence[s
             pos = y == j
             if pos.all() or not pos.any():
                 continue
-            fpr, tpr, _ = roc_curve(pos, p[:, j], drop_intermediate=True)
+            fpr, tpr, _ = roc_curve(pos, p[:, j], sample_weight=weight,
+                                    drop_intermediate=True)
             step = max(1, len(fpr) // 300)
             keep = np.unique(np.append(np.arange(0, len(fpr), step), len(fpr) - 1))
             per[cls] = {"fpr": np.round(fpr[keep], 6).tolist(),
@@ -308,7 +346,7 @@ def _figures(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
         ax.set_xlim(1e-5, 1)
         ax.set_ylim(0, 1.02)
         ax.set_xticks([1e-4, 1e-2, 1])
-        ax.set_title(cls, fontsize=8)
+        ax.set_title(cls, fontsize=8, parse_math=False)  # a '$' in a name is not TeX
         ax.tick_params(labelsize=7)
     fig.supxlabel("false-positive rate (log scale)", fontsize=8)
     fig.supylabel("true-positive rate", fontsize=8)

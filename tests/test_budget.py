@@ -204,3 +204,40 @@ def test_plan_without_cost_model_falls_back_to_confidence() -> None:
                   Budget(max_fetches=2))
     assert [i.url for i in result.fetch] == ["http://b.example/", "http://c.example/"]
     np.testing.assert_allclose(confidence_gain(pu, np.ones(2))["p_wrong"], [0.1, 0.45, 0.3])
+
+
+def test_fetch_history_with_negative_or_nan_figures_is_refused() -> None:
+    for bad in ({"domain": "a.example", "ok": True, "bytes": -5, "ms": 1},
+                {"domain": "a.example", "ok": True, "bytes": float("nan"), "ms": 1}):
+        with pytest.raises(ValueError, match="finite"):
+            FetchCosts.from_history([bad])
+
+
+def test_failed_refit_keeps_the_fitted_state(fitted) -> None:
+    y, pu, pf = _synthetic(200, seed=9)
+    before = fitted.costs_.copy()
+    for costs in ([1.0, 1.0, 1.0, 0.0], [1.0, float("nan"), 1.0, 1.0], [1.0, 1.0]):
+        with pytest.raises(ValueError, match="costs"):
+            fitted.fit(pu, pf, y, costs=np.array(costs))
+    np.testing.assert_array_equal(fitted.costs_, before)
+
+
+def test_cost_model_file_with_wrong_shapes_is_refused(fitted, tmp_path) -> None:
+    from cascade.models.model_files import load_model_dir, save_model_dir
+
+    path = fitted.save(tmp_path / "cost")
+    meta, arrays = load_model_dir(path, "cost-model")
+    arrays["scale"] = arrays["scale"][:-1]  # consistently re-hashed, but the wrong shape
+    body = {k: v for k, v in meta.items()
+            if k not in ("format", "format_version", "kind", "files", "content_sha256")}
+    save_model_dir(tmp_path / "bad", "cost-model", body, arrays)
+    with pytest.raises(ModelFileError, match="shape"):
+        CostModel.load(tmp_path / "bad")
+
+
+def test_fallback_plan_weighs_category_costs() -> None:
+    # Equal confidence; the second URL's runner-up is the costly category.
+    pu = np.array([[0.6, 0.4, 0.0], [0.6, 0.0, 0.4]])
+    result = plan(["http://a.example/", "http://b.example/"], pu, None, Budget(max_fetches=1),
+                  costs=np.array([1.0, 1.0, 5.0]))
+    assert result.fetch[0].url == "http://b.example/"

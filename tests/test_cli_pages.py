@@ -125,3 +125,24 @@ def test_plan_merges_repeated_urls_and_sums_their_lookups(trained, tmp_path, cap
     rows = [json.loads(line) for line in captured.out.splitlines()]
     assert len(rows) == 1
     assert json.loads(captured.err.strip().splitlines()[-1])["urls"] == 1
+
+
+def test_plan_learns_from_fetch_history_and_skips_its_bad_lines(trained, tmp_path,
+                                                                 capsys) -> None:
+    root, records = trained
+    host = normalize(records[0].url).host
+    good = {"url": f"http://{host}/a", "outcome": "timeout", "bytes_read": 0,
+            "elapsed_ms": 10000}
+    bad = {"url": f"http://{host}/b", "outcome": "ok", "bytes_read": -5, "elapsed_ms": 1}
+    history = tmp_path / "fetches.jsonl"
+    history.write_text(json.dumps(good) + "\n" + json.dumps(bad) + "\n")
+    code = main(["plan", "-m", str(root / "model"), "--budget", "5", "--fetch-history",
+                 str(history), records[0].url, records[1].url])
+    assert code == EXIT_OK
+    summary = json.loads(capsys.readouterr().err.strip().splitlines()[-1])
+    assert summary["fetch_history"]["bad"] == 1
+    # A file that is not fetch output at all is refused, not read as free fetches.
+    code = main(["plan", "-m", str(root / "model"), "--budget", "5", "--fetch-history",
+                 str(root / "train.csv"), records[0].url])
+    assert code == 4
+    assert "no usable fetch results" in capsys.readouterr().err

@@ -127,3 +127,19 @@ def test_bundle_trains_saves_and_checks_links(scenario, tmp_path):
     other.save(path / "page")
     with pytest.raises(ModelFileError, match="retrain"):
         ModelBundle.load(path)
+
+
+def test_bundle_with_every_page_on_one_domain_trains_without_a_cost_model() -> None:
+    from cascade.bundle import fit_bundle
+    from cascade.extract import extract as _extract
+
+    urls = [f"http://site{i}.example/p" for i in range(90)] + \
+        [f"http://one.example/p{i}" for i in range(30)]
+    labels = (["news", "games", "travel"] * 40)
+    pages = [None] * 90 + [_extract(f"<title>{labels[90 + i]} page</title><p>{labels[90 + i]} "
+                                    "words here and more words</p>") for i in range(30)]
+    bundle = fit_bundle(urls, labels, pages, folds=3,
+                        url_params={"n_features": 2**12, "max_iter": 20},
+                        page_params={"n_features": 2**12, "max_iter": 20})
+    assert bundle.cost_model is None
+    assert "not fitted" in str(bundle.report.get("cost_model", "not fitted"))

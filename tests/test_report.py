@@ -118,3 +118,55 @@ def test_planner_order_weights_gain_by_lookups(data) -> None:
     assert strategy_orders(y, pu, pf, gain, counts)["planner"][0] == j
     assert strategy_orders(y, pu, pf, gain, counts)["lowest-confidence"][0] != j or \
         pu[j].max() == pu.max(1).min()
+
+
+def test_accuracy_oracle_is_the_ceiling_even_with_unequal_costs(data) -> None:
+    y, pu, pf, gain = data
+    costs = np.array([10.0, 1.0, 1.0, 1.0])
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], costs=costs, seeds=2)
+    for j in range(len(rep["curves"]["budget"])):
+        for metric, better in (("accuracy", max), ("cost_weighted_error", min)):
+            oracle = rep["curves"]["oracle"][metric][j]
+            assert better(oracle, *(rep["curves"][s][metric][j] for s in STRATEGIES)) == oracle
+
+
+def test_bad_budget_shares_and_seeds_are_refused(data) -> None:
+    y, pu, pf, gain = data
+    for kw in ({"budgets": (0.0, -0.05)}, {"budgets": (1.5,)}, {"operating_budget": -0.3},
+               {"seeds": 0}):
+        with pytest.raises(ValueError):
+            build_report(y, pu, pf, gain, ["a", "b", "c", "d"], **kw)
+    with pytest.raises(ValueError, match="class names"):
+        build_report(y, pu, pf, gain, ["a", "b"])
+
+
+def test_budget_shares_round_down_like_the_planner(data) -> None:
+    from cascade.budget import Budget
+
+    y, pu, pf, gain = data
+    n = len(y)
+    order = strategy_orders(y, pu, pf, gain)["planner"]
+    for share in (0.3, 0.125, 0.333):
+        m = Budget(max_fraction=share).count_limit(n)
+        mixed = pu.argmax(1).copy()
+        mixed[order[:m]] = pf[order[:m]].argmax(1)
+        got = budget_curve(y, pu, pf, order, [share])["accuracy"][0]
+        assert got == pytest.approx(accuracy_score(y, mixed))  # reference: sklearn.metrics
+
+
+def test_weighted_roc_points_carry_the_table_tpr(data) -> None:
+    y, pu, pf, gain = data
+    counts = np.random.default_rng(5).integers(1, 1000, len(y)).astype(float)
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], counts=counts, seeds=2)
+    # reference: sklearn.metrics.roc_curve with sample_weight
+    fpr, tpr, _ = roc_curve(y == 1, pu[:, 1], sample_weight=counts, drop_intermediate=False)
+    row = next(r for r in rep["per_class"] if r["category"] == "b")
+    assert row["tpr_at_fpr_0.001_url"] == pytest.approx(tpr[fpr <= 1e-3].max(), abs=1e-4)
+
+
+def test_dollar_signs_in_category_names_render(data, tmp_path) -> None:
+    y, pu, pf, gain = data
+    names = ["$x^$", "price $\\frac$", "a$b$c", "<b>&"]
+    paths = write_report(build_report(y, pu, pf, gain, names, seeds=1), tmp_path / "d")
+    page = paths["html"].read_text()
+    assert "&lt;b&gt;&amp;" in page and "<b>&" not in page
