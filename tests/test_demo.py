@@ -31,3 +31,5 @@ def test_demo_runs_the_whole_cascade(tmp_path) -> None:
     # Every fetch stayed on the loopback farm and none was refused by the address guard.
     fetches = [json.loads(line) for line in (out / "fetches.jsonl").read_text().splitlines()]
     assert all(f["outcome"] == "ok" for f in fetches)
+    assert sum(f["fetched_for"] == "plan" for f in fetches) == h["plan_spent"]["fetches"] \
+        == h["fetched_by_plan"]
