@@ -93,7 +93,8 @@ def test_bad_option_is_a_usage_error() -> None:
     assert info.value.code == EXIT_USAGE
 
 
-@pytest.mark.parametrize("command", ["train", "score", "explain", "evaluate", "demo"])
+@pytest.mark.parametrize("command", ["train", "score", "explain", "evaluate", "fetch", "refine",
+                                     "plan", "report", "demo"])
 def test_every_command_has_help(command: str, capsys) -> None:
     with pytest.raises(SystemExit) as info:
         main([command, "--help"])
@@ -124,3 +125,14 @@ def test_fetch_command_prints_results_and_refuses_private_targets(capsys) -> Non
     rows = {r["url"]: r for r in map(json.loads, capsys.readouterr().out.splitlines())}
     assert rows[farm.url("site.test", "/_hostile/page")]["outcome"] == "ok"
     assert rows[farm.url("inside.test", "/")]["outcome"] == "blocked-address"
+
+
+def test_plan_with_a_url_only_model_ranks_by_confidence(workdir: Path, capsys) -> None:
+    code = main(["plan", "-m", str(workdir / "model"), "--budget", "2",
+                 "-i", str(workdir / "labelled.csv")])
+    assert code == EXIT_OK
+    captured = capsys.readouterr()
+    rows = [json.loads(line) for line in captured.out.splitlines()]
+    # chance of a wrong verdict x category cost x lookups, best first
+    assert len(rows) == 2 and rows[0]["expected_gain"] >= rows[1]["expected_gain"] > 0
+    assert "no cost model" in captured.err
