@@ -47,8 +47,7 @@ FINE = np.round(np.arange(0, 101) / 100.0, 2)
 def _costs(name: str, classes: list[str]) -> np.ndarray:
     if name != "demo":
         return np.ones(len(classes))  # WebKB has no cost notion: every mistake weighs 1
-    tax = demo_taxonomy()
-    return np.array([tax.categories[tax.index(c)].cost for c in classes])
+    return demo_taxonomy().costs(classes)
 
 
 def _curves(y, pu, pf, gain, costs, counts, seed: int) -> dict[str, dict]:

@@ -125,10 +125,8 @@ def fit_bundle(
     if not (len(keys) == len(labels) == len(pages)):
         raise ValueError("urls, labels and pages must have the same length")
     taxonomy = taxonomy or Taxonomy.from_labels(labels)
-    taxonomy.check_labels(labels)
+    y = taxonomy.encode(labels)
     classes = list(taxonomy.names)
-    index = {c: i for i, c in enumerate(classes)}
-    y = np.array([index[lab] for lab in labels], dtype=np.int64)
     has_page = np.array([p is not None for p in pages])
     page_rows = np.flatnonzero(has_page)
     page_list = as_pages([pages[i] for i in page_rows]) if page_rows.size else []

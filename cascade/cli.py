@@ -447,7 +447,6 @@ def _fetch_costs(path: str | None, stats: ReadStats) -> Any:
 
 
 def cmd_plan(args: argparse.Namespace) -> int:
-    import numpy as np
 
     from cascade.budget import plan
     from cascade.bundle import ModelBundle
@@ -466,7 +465,7 @@ def cmd_plan(args: argparse.Namespace) -> int:
     keys = [k for k, _ in merged.values()]
     proba = bundle.url_model.predict_proba(keys) if keys else None
     taxonomy = bundle.url_model.taxonomy_
-    costs = np.array([taxonomy.categories[taxonomy.index(c)].cost for c in bundle.classes])
+    costs = taxonomy.costs(bundle.classes)
     history_stats = ReadStats()
     result = plan([k.url for k in keys], proba, bundle.cost_model, budget,
                   counts=[c for _, c in merged.values()],
@@ -524,7 +523,7 @@ def cmd_report(args: argparse.Namespace) -> int:
             pu, [k.registered_domain or k.host for k in keys])["gain"]
         planner = "cost model"
     taxonomy = bundle.url_model.taxonomy_
-    costs = np.array([taxonomy.categories[taxonomy.index(c)].cost for c in classes])
+    costs = taxonomy.costs(classes)
     if bundle.cost_model is None:
         gain = confidence_gain(pu, costs)["gain"]
         planner = "confidence (no cost model)"

@@ -173,15 +173,14 @@ def build_report(
 
     def curves_at(fractions: Sequence[float]) -> dict[str, Any]:
         out: dict[str, Any] = {}
+        orders = {(s, m): strategy_orders(y, pu, pf, gain, w, c, seed=s, metric=m)
+                  for s in range(seeds) for m in ("accuracy", "cost_weighted_error")}
         for name in STRATEGIES:
             per_seed = []
             for s in range(seeds if name == "random" else 1):
-                row = {}
-                for metric in ("accuracy", "cost_weighted_error"):
-                    order = strategy_orders(y, pu, pf, gain, w, c, seed=s,
-                                            metric=metric)[name]
-                    row[metric] = budget_curve(y, pu, pf, order, fractions, w, c)[metric]
-                per_seed.append(row)
+                per_seed.append({m: budget_curve(y, pu, pf, orders[s, m][name], fractions, w,
+                                                 c)[m]
+                                 for m in ("accuracy", "cost_weighted_error")})
             out[name] = {m: np.mean([p[m] for p in per_seed], axis=0).tolist()
                          for m in ("accuracy", "cost_weighted_error")}
             if name == "random":

@@ -76,9 +76,18 @@ class Taxonomy:
         except ValueError:
             raise TaxonomyError(f"{name!r} is not a category of taxonomy {self.name!r}") from None
 
-    def costs(self) -> np.ndarray:
-        """Cost weight per category, in taxonomy order."""
-        return np.array([c.cost for c in self.categories], dtype=np.float64)
+    def costs(self, names: Sequence[str] | None = None) -> np.ndarray:
+        """Cost weight per category, in taxonomy order or in the order of ``names``."""
+        if names is None:
+            return np.array([c.cost for c in self.categories], dtype=np.float64)
+        return np.array([self.categories[self.index(n)].cost for n in names],
+                        dtype=np.float64)
+
+    def encode(self, labels: Sequence[str]) -> np.ndarray:
+        """Class indices (taxonomy order) of ``labels``; ``TaxonomyError`` lists unknown ones."""
+        self.check_labels(labels)
+        index = {c: i for i, c in enumerate(self.names)}
+        return np.array([index[lab] for lab in labels], dtype=np.int64)
 
     def check_labels(self, labels: Iterable[str]) -> None:
         """Raise ``TaxonomyError`` listing every label that is not a category here."""

@@ -207,10 +207,8 @@ class PageModel:
         if len(pages) < 2:
             raise ValueError("need at least two labelled pages to fit")
         taxonomy = taxonomy or Taxonomy.from_labels(labels)
-        taxonomy.check_labels(labels)
+        y = taxonomy.encode(labels)
         classes = list(taxonomy.names)
-        index = {c: i for i, c in enumerate(classes)}
-        y = np.array([index[lab] for lab in labels], dtype=np.int64)
         if len(np.unique(y)) < 2:
             raise TaxonomyError("training labels hold a single category; need at least two")
         n = len(pages)

@@ -199,10 +199,8 @@ class UrlModel:
         if len(keys) < 2:
             raise ValueError("need at least two labelled URLs to fit")
         taxonomy = taxonomy or Taxonomy.from_labels(labels)
-        taxonomy.check_labels(labels)
+        y = taxonomy.encode(labels)
         classes = list(taxonomy.names)
-        index = {c: i for i, c in enumerate(classes)}
-        y = np.array([index[lab] for lab in labels], dtype=np.int64)
         weight = None if sample_weight is None else np.asarray(sample_weight, dtype=np.float64)
         if self.class_balance:
             freq = np.bincount(y, minlength=len(classes)).astype(np.float64)
