@@ -31,7 +31,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import machine, write_json  # noqa: E402
 
-from cascade.budget import CostModel  # noqa: E402
+from cascade.fetch_value import FetchValueModel  # noqa: E402
 from cascade.report import (  # noqa: E402
     DEFAULT_BUDGETS,
     STRATEGIES,
@@ -92,7 +92,7 @@ def run_split(path: Path, seeds: int, by_lookups: bool = False,
         rng = np.random.default_rng(s)
         tr = np.arange(on) if s == 0 else rng.integers(0, on, on)
         te = np.arange(n) if s == 0 else rng.integers(0, n, n)
-        cm = CostModel(seed=s).fit(opu[tr], opf[tr], oy[tr], costs=fit_costs,
+        cm = FetchValueModel(seed=s).fit(opu[tr], opf[tr], oy[tr], costs=fit_costs,
                                    domains=[str(x) for x in odom[tr]])
         gain = cm.expected_gain(pu[te])["gain"]
         w = None if counts is None else counts[te].astype(float)

@@ -18,6 +18,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from cascade.budget import Budget
+from cascade.verdict import Reason
 
 __all__ = ["BudgetMeter", "Reservation", "fetch_within_budget"]
 
@@ -56,17 +57,17 @@ class BudgetMeter:
         """A meter whose worst case per fetch is ``policy``'s byte cap and deadline."""
         return cls(budget, n_offered, float(policy.max_bytes), float(policy.deadline_s))
 
-    def why_not(self) -> str | None:
+    def why_not(self) -> Reason | None:
         """Which limit stops one more fetch from starting now; None if it may start."""
         b = self.budget
         if self.started >= self.count_limit:
-            return "budget:count"
+            return Reason.BUDGET_COUNT
         if b.max_bytes is not None and \
                 self.bytes_spent + self._held_bytes + self.worst_bytes > b.max_bytes:
-            return "budget:bytes"
+            return Reason.BUDGET_BYTES
         if b.max_seconds is not None and \
                 self.seconds_spent + self._held_seconds + self.worst_seconds > b.max_seconds:
-            return "budget:seconds"
+            return Reason.BUDGET_SECONDS
         return None
 
     def try_start(self) -> Reservation | None:
@@ -93,19 +94,20 @@ class BudgetMeter:
 async def fetch_within_budget(fetcher: Any, urls: Sequence[str], meter: BudgetMeter,
                               window: int = 64) -> AsyncIterator[tuple[str, Any, str]]:
     """Fetch ``urls`` in the given (plan) order while the meter allows; yields
-    ``(url, FetchResult or None, reason)``. A URL never started has reason
-    ``budget-exhausted:<limit>``; a started one has ``fetched``."""
+    ``(url, FetchResult or None, reason)``. A URL never started has the limit that stopped
+    it (``budget:count``, ``budget:bytes``, ``budget:seconds``); a started one has
+    ``selected``."""
     pending = list(urls)
     running: dict[asyncio.Task[Any], tuple[str, Reservation]] = {}
     pos = 0
-    stop: str | None = None
+    stop: Reason | None = None
     try:
         while pos < len(pending) or running:
             while pos < len(pending) and len(running) < window and stop is None:
                 reservation = meter.try_start()
                 if reservation is None:
                     if not running:  # nothing will free room: the budget is spent
-                        stop = meter.why_not() or "budget:count"
+                        stop = meter.why_not() or Reason.BUDGET_COUNT
                     break
                 url = pending[pos]
                 pos += 1
@@ -117,8 +119,8 @@ async def fetch_within_budget(fetcher: Any, urls: Sequence[str], meter: BudgetMe
                 url, reservation = running.pop(task)
                 result = task.result()
                 meter.finish(reservation, result.bytes_read or 0, result.elapsed_ms / 1000.0)
-                yield url, result, "fetched"
-        reason = f"budget-exhausted:{(stop or meter.why_not() or 'budget:count').split(':')[1]}"
+                yield url, result, Reason.SELECTED
+        reason = stop or meter.why_not() or Reason.BUDGET_COUNT
         for url in pending[pos:]:
             yield url, None, reason
     finally:

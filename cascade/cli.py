@@ -1,11 +1,13 @@
-"""The ``cascade`` command.
+"""The ``cascade`` command: argument parsing and printing only; the work is done by the
+library modules (``cascade.training``, ``cascade.bundle``, ``cascade.budget``, ...).
 
-Exit codes (also in ``cascade --help``):
-  0  done, every input line used
-  1  unexpected internal error (a bug: please report it with the traceback)
-  2  usage error (bad options)
-  3  done, but some input lines were bad and skipped (counted, samples in the summary)
-  4  a file could not be used (model directory, taxonomy, input file)
+Exit codes (``EXIT_CODES`` is the one table; also in ``cascade --help``):
+  0    done, every input line used
+  1    unexpected internal error (a bug: please report it with the traceback)
+  2    usage error (bad options or arguments)
+  3    done, but some input lines were bad and skipped (counted, samples in the summary)
+  4    a file could not be used (model directory, taxonomy, input file, too little data)
+  130  interrupted (Ctrl-C)
 """
 
 from __future__ import annotations
@@ -13,24 +15,54 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import traceback
 from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
 from cascade import __version__
-from cascade.errors import CascadeError, InvalidURL
+from cascade.errors import (
+    CascadeError,
+    DataError,
+    InputFormatError,
+    InvalidURL,
+    ModelFileError,
+    TaxonomyError,
+    UsageError,
+)
 from cascade.io import InputRecord, Progress, ReadStats, open_writer, read_records
-from cascade.taxonomy import Taxonomy, demo_taxonomy, load_taxonomy
-from cascade.urls import UrlKey, normalize
 
-EXIT_OK, EXIT_BUG, EXIT_USAGE, EXIT_PARTIAL, EXIT_FILE = 0, 1, 2, 3, 4
+EXIT_OK, EXIT_BUG, EXIT_USAGE, EXIT_PARTIAL, EXIT_FILE, EXIT_INTERRUPTED = 0, 1, 2, 3, 4, 130
+
+#: Exception type to exit code, most specific first; anything else is a bug (exit 1).
+EXIT_CODES: tuple[tuple[type[BaseException], int], ...] = (
+    (UsageError, EXIT_USAGE),
+    (InvalidURL, EXIT_USAGE),
+    (ModelFileError, EXIT_FILE),
+    (TaxonomyError, EXIT_FILE),
+    (InputFormatError, EXIT_FILE),
+    (DataError, EXIT_FILE),
+    (FileNotFoundError, EXIT_FILE),
+    (IsADirectoryError, EXIT_FILE),
+    (PermissionError, EXIT_FILE),
+    (CascadeError, EXIT_FILE),
+)
 CHUNK = 4096
 
-EPILOG = """exit codes: 0 done; 1 internal error; 2 usage error; 3 done but some input lines were
-skipped (see the summary on stderr); 4 a model, taxonomy or input file could not be used.
+EPILOG = """exit codes: 0 done; 1 internal error (a bug); 2 usage error; 3 done but some input
+lines were skipped (see the summary on stderr); 4 a model, taxonomy or input file could not
+be used; 130 interrupted.
 
 Categories are probabilities, not facts. Lookup logs are personal data: handle them under
 your organisation's policy and local law. The policy owner decides what to block."""
+
+
+def exit_code_for(exc: BaseException) -> int:
+    """The exit code of an exception that ended a command (``EXIT_CODES``)."""
+    for kind, code in EXIT_CODES:
+        if isinstance(exc, kind):
+            return code
+    return EXIT_BUG
 
 
 # ---------------------------------------------------------------------------- helpers
@@ -38,27 +70,11 @@ def _eprint(*args: Any) -> None:
     print(*args, file=sys.stderr, flush=True)
 
 
-def _summary(stats: ReadStats, **extra: Any) -> dict[str, Any]:
-    out = {"input": stats.to_dict(), **extra}
-    return out
-
-
 def _finish(summary: dict[str, Any], stats: ReadStats, quiet: bool = False) -> int:
+    summary = {"input": stats.to_dict(), **summary}
     if not quiet:
         _eprint(json.dumps(summary, ensure_ascii=False))
     return EXIT_PARTIAL if stats.bad else EXIT_OK
-
-
-def _keyed_records(
-    records: Iterator[InputRecord], stats: ReadStats
-) -> Iterator[tuple[InputRecord, UrlKey]]:
-    """Normalize each record's URL; a bad URL is counted as a bad line and skipped."""
-    for rec in records:
-        try:
-            yield rec, normalize(rec.url)
-        except InvalidURL as exc:
-            stats.records -= 1
-            stats.add_bad(rec.line_no, rec.url, f"invalid URL: {exc.reason}")
 
 
 def _chunks(items: Iterator[Any], size: int = CHUNK) -> Iterator[list[Any]]:
@@ -79,11 +95,18 @@ def _input_records(args: argparse.Namespace, stats: ReadStats) -> Iterator[Input
             stats.records += 1
             yield InputRecord(line_no=i, url=u)
         return
-    source = args.input or "-"
-    yield from read_records(source, fmt=args.input_format, stats=stats)
+    yield from read_records(args.input or "-", fmt=args.input_format, stats=stats)
 
 
-def _load_taxonomy(path: str | None) -> Taxonomy | None:
+def _keyed(args: argparse.Namespace, stats: ReadStats) -> Iterator[tuple[InputRecord, Any]]:
+    from cascade.lookups import keyed_records
+
+    return keyed_records(_input_records(args, stats), stats)
+
+
+def _load_taxonomy(path: str | None) -> Any:
+    from cascade.taxonomy import demo_taxonomy, load_taxonomy
+
     if path is None:
         return None
     if path == "demo":
@@ -91,13 +114,15 @@ def _load_taxonomy(path: str | None) -> Taxonomy | None:
     return load_taxonomy(path)
 
 
-def _load_labelled(args: argparse.Namespace, stats: ReadStats,
-                   extras: list[dict[str, str]] | None = None) -> tuple[
-        list[UrlKey], list[str], list[int], list[str | None]]:
-    keys, labels, counts, times = [], [], [], []
+def _load_labelled(args: argparse.Namespace, stats: ReadStats) -> tuple[
+        list[Any], list[str], list[int], list[str | None], list[dict[str, str]]]:
+    """Rows with a URL and a label (a row without a label is a bad line)."""
+    from cascade.lookups import keyed_records
+
+    keys, labels, counts, times, extras = [], [], [], [], []
     progress = Progress(label="reading", enabled=None if not args.quiet else False)
-    for rec, key in _keyed_records(read_records(args.input, fmt=args.input_format, stats=stats),
-                                   stats):
+    for rec, key in keyed_records(read_records(args.input, fmt=args.input_format,
+                                               stats=stats), stats):
         if not rec.label:
             stats.records -= 1
             stats.add_bad(rec.line_no, rec.url, "no label")
@@ -106,119 +131,78 @@ def _load_labelled(args: argparse.Namespace, stats: ReadStats,
         labels.append(rec.label)
         counts.append(rec.count)
         times.append(rec.seen_at)
-        if extras is not None:
-            extras.append(rec.extra)
+        extras.append(rec.extra)
         progress.update()
     progress.close()
-    return keys, labels, counts, times
+    return keys, labels, counts, times, extras
+
+
+def _pages(args: argparse.Namespace, extras: list[dict[str, str]], who: str) -> list[Any]:
+    from cascade.saved_pages import row_pages
+
+    base = Path(args.pages) if args.pages else Path(args.input).parent
+    return row_pages(extras, base, warn=lambda m: _eprint(f"{who}: {m}"))
+
+
+def _labels_known(labels: Sequence[str], classes: Sequence[str], where: str) -> None:
+    unknown = sorted(set(labels) - set(classes))
+    if unknown:
+        raise DataError(f"{where}: labels not among the model's categories: {unknown[:20]}")
+
+
+def _write_json(obj: Any, target: str | None) -> None:
+    text = json.dumps(obj, indent=2, ensure_ascii=False)
+    if target and target != "-":
+        Path(target).write_text(text + "\n", encoding="utf-8")
+    else:
+        print(text)
 
 
 # ---------------------------------------------------------------------------- commands
 def cmd_train(args: argparse.Namespace) -> int:
-    from cascade.evaluate import evaluate_proba, evaluation_split
     from cascade.models.url_model import UrlModel
+    from cascade.training import train
 
     stats = ReadStats()
-    extras: list[dict[str, str]] = []
-    keys, labels, counts, times = _load_labelled(args, stats, extras)
+    keys, labels, counts, times, extras = _load_labelled(args, stats)
     if len(keys) < 2:
-        raise CascadeError(f"{args.input}: fewer than two usable labelled rows")
-    pages = _read_pages(args, extras)
-    taxonomy = _load_taxonomy(args.taxonomy)
-    params = dict(ngram_range=(args.ngram_min, args.ngram_max), n_features=2**args.hash_bits,
-                  use_tokens=not args.no_tokens, C=args.C, max_iter=args.max_iter,
-                  seed=args.seed)
-    metrics: dict[str, Any] = {}
-    if args.holdout > 0:
-        split = evaluation_split(keys, times, test_fraction=args.holdout, seed=args.seed,
-                                 group_by_domain=not args.no_group)
-        _eprint(f"train: holding out {len(split.test)} rows ({split.method}) to measure")
-        model = UrlModel(**params).fit([keys[i] for i in split.train],
-                                       [labels[i] for i in split.train], taxonomy=taxonomy)
-        test_keys = [keys[i] for i in split.test]
-        if test_keys:
-            metrics = evaluate_proba(model.predict_proba(test_keys),
-                                     [labels[i] for i in split.test], model.classes_,
-                                     counts=[counts[i] for i in split.test])
-            metrics["split"] = split.describe()
-            _eprint(f"train: held-out accuracy {metrics['accuracy']:.4f}, macro-F1 "
-                    f"{metrics['macro_f1']:.4f}, ECE {metrics['ece_15']:.4f}")
-    n_pages = sum(p is not None for p in pages)
-    if n_pages:
-        from cascade.bundle import fit_bundle
-
-        _eprint(f"train: URL model on {len(keys)} rows, page model and fusion on "
-                f"{n_pages} pages (stacked, {args.folds} folds)")
-        url_params = {k: v for k, v in params.items() if k != "seed"}
-        bundle = fit_bundle(keys, labels, pages, taxonomy=taxonomy, url_params=url_params,
-                            folds=args.folds, seed=args.seed,
-                            progress=None if args.quiet else lambda m: _eprint(f"train: {m}"))
-        bundle.save(args.model, metrics=metrics)
-        return _finish(_summary(stats, model=str(args.model), version=bundle.version,
-                                classes=len(bundle.classes), pages=n_pages,
-                                stacking=bundle.report, metrics_held_out=bool(metrics)),
-                       stats, args.quiet)
-    _eprint(f"train: fitting on {len(keys)} rows")
-    model = UrlModel(**params).fit(keys, labels, taxonomy=taxonomy)
-    model.save(args.model, metrics=metrics)
-    return _finish(_summary(stats, model=str(args.model), version=model.version,
-                            classes=len(model.classes_), temperature=model.temperature_,
-                            seconds=model.training_["seconds"], metrics_held_out=bool(metrics)),
-                   stats, args.quiet)
-
-
-def _read_pages(args: argparse.Namespace, extras: list[dict[str, str]],
-                who: str = "train") -> list[Any]:
-    """Each row's page: a ``page`` column naming a saved HTML file (under ``--pages``, else
-    beside the input; ``.gz`` ok) or a ``text`` column of page text; None where neither.
-    A page file that cannot be read is reported and the row trains the URL model only."""
-    import gzip
-
-    from cascade.extract import extract
-
-    base = Path(args.pages) if args.pages else Path(args.input).parent
-    pages: list[Any] = []
-    missing = 0
-    for extra in extras:
-        name, text = extra.get("page"), extra.get("text")
-        if name:
-            path = base / name
-            try:
-                raw = path.read_bytes()
-                if raw[:2] == b"\x1f\x8b":
-                    raw = gzip.decompress(raw)
-            except (OSError, EOFError, gzip.BadGzipFile) as exc:
-                missing += 1
-                if missing <= 5:
-                    _eprint(f"{who}: page {path} not used: {exc}")
-                pages.append(None)
-                continue
-            pages.append(extract(raw, content_type="text/html"))
-        elif text:
-            pages.append(extract(text, content_type="text/plain"))
-        else:
-            pages.append(None)
-    if missing:
-        _eprint(f"{who}: {missing} page files could not be read; those rows use the URL "
-                "model only")
-    return pages
+        raise DataError(f"{args.input}: fewer than two usable labelled rows")
+    pages = _pages(args, extras, "train")
+    url_model = UrlModel(ngram_range=(args.ngram_min, args.ngram_max),
+                         n_features=2**args.hash_bits, use_tokens=not args.no_tokens,
+                         C=args.C, max_iter=args.max_iter)
+    try:
+        url_model._check_params()
+    except ValueError as exc:
+        raise UsageError(str(exc)) from None
+    bundle, metrics = train(
+        keys, labels, pages=pages, times=times, counts=counts,
+        taxonomy=_load_taxonomy(args.taxonomy), url_model=url_model, folds=args.folds,
+        holdout=args.holdout, group_by_domain=not args.no_group, seed=args.seed,
+        progress=None if args.quiet else lambda m: _eprint(f"train: {m}"))
+    bundle.save(args.model, metrics=metrics)
+    summary: dict[str, Any] = {"model": str(args.model), "version": bundle.version,
+                               "classes": len(bundle.classes),
+                               "metrics_held_out": bool(metrics)}
+    if bundle.page_model is not None:
+        summary.update(pages=sum(p is not None for p in pages), stacking=bundle.report)
+    else:
+        summary.update(temperature=bundle.url_model.temperature_,
+                       seconds=bundle.url_model.training_["seconds"])
+    return _finish(summary, stats, args.quiet)
 
 
 def cmd_score(args: argparse.Namespace) -> int:
-    from cascade.models.url_model import UrlModel
-    from cascade.verdict import url_verdicts
+    from cascade.bundle import ModelBundle
 
-    model = UrlModel.load(args.model)
+    bundle = ModelBundle.load(args.model)  # scores with the URL stage; named as a whole
     stats = ReadStats()
     progress = Progress(label="scoring", enabled=None if not args.quiet else False)
     written = 0
     with open_writer(args.output, fmt=args.output_format) as out:
-        for chunk in _chunks(_keyed_records(_input_records(args, stats), stats)):
+        for chunk in _chunks(_keyed(args, stats)):
             keys = [k for _, k in chunk]
-            proba = model.predict_proba(keys)
-            for verdict in url_verdicts([k.url for k in keys], proba, model.classes_,
-                                        model.version, fetch_below=args.fetch_below,
-                                        top_k=args.top):
+            for verdict in bundle.verdicts(keys, fetch_below=args.fetch_below, top_k=args.top):
                 row = verdict.to_dict()
                 if args.output_format == "csv":
                     row["top"] = json.dumps(row["top"])
@@ -226,38 +210,12 @@ def cmd_score(args: argparse.Namespace) -> int:
                 written += 1
             progress.update(len(chunk))
     progress.close()
-    return _finish(_summary(stats, scored=written, model_version=model.version), stats,
-                   args.quiet)
+    return _finish({"scored": written, "model_version": bundle.version}, stats, args.quiet)
 
 
-def cmd_explain(args: argparse.Namespace) -> int:
-    from cascade.models.url_model import UrlModel
-
-    model = UrlModel.load(args.model)
-    if args.page:
-        return _explain_page(args)
-    bad = 0
-    for url in args.urls:
-        try:
-            exp = model.explain(url, top=args.top, n_classes=args.classes)
-        except InvalidURL as exc:
-            bad += 1
-            _eprint(f"explain: {exc}")
-            continue
-        if args.json:
-            print(json.dumps(exp.to_dict(), ensure_ascii=False))
-            continue
-        print(exp.url)
-        for cls, rest in zip(exp.classes, exp.rest, strict=True):
-            print(f"  {cls.category:<14} p={cls.probability:.3f}  logit={cls.logit:+.3f}"
-                  f"  (bias {cls.bias:+.3f}, other features {rest:+.3f})")
-            for c in cls.contributions:
-                print(f"      {c.value:+.3f}  {c.kind:<5} {c.feature}")
-    return EXIT_PARTIAL if bad else EXIT_OK
-
-
-def _print_explanation(exp: Any, title: str) -> None:
-    print(title)
+def _print_explanation(exp: Any, title: str | None = None) -> None:
+    if title:
+        print(title)
     for cls, rest in zip(exp.classes, exp.rest, strict=True):
         print(f"  {cls.category:<14} p={cls.probability:.3f}  logit={cls.logit:+.3f}"
               f"  (bias {cls.bias:+.3f}, other features {rest:+.3f})")
@@ -265,88 +223,79 @@ def _print_explanation(exp: Any, title: str) -> None:
             print(f"      {c.value:+.3f}  {c.kind:<6} {c.feature}")
 
 
-def _explain_page(args: argparse.Namespace) -> int:
-    import gzip
-
-    import numpy as np
-
+def cmd_explain(args: argparse.Namespace) -> int:
     from cascade.bundle import ModelBundle
-    from cascade.extract import extract
-    from cascade.models.text_features import page_word_count
 
-    if len(args.urls) != 1:
-        raise ValueError("--page explains one URL at a time")
     bundle = ModelBundle.load(args.model)
-    if bundle.page_model is None or bundle.fusion is None:
-        raise CascadeError(f"{args.model}: no page model here (train with pages)")
-    try:
-        raw = Path(args.page).read_bytes()
-        if raw[:2] == b"\x1f\x8b":
-            raw = gzip.decompress(raw)
-    except (OSError, EOFError, gzip.BadGzipFile) as exc:
-        raise CascadeError(f"{args.page}: cannot read the page: {exc}") from None
-    url = normalize(args.urls[0])
-    page = extract(raw, url=url.url, content_type="text/html")
-    url_exp = bundle.url_model.explain(url, top=args.top, n_classes=args.classes)
-    page_exp = bundle.page_model.explain(page, top=args.top, n_classes=args.classes,
-                                         url=url.url)
-    pu = bundle.url_model.predict_proba_one(url)
-    pp = bundle.page_model.predict_proba([page])[0]
-    words = page_word_count(page)
-    fused = bundle.fusion.combine(pu, pp, words)
-    best = int(np.argmax(fused.proba))
-    summary = {"url": url.url, "category": bundle.classes[best],
-               "confidence": round(float(fused.proba[best]), 6), "stage": fused.stage,
-               "reason": fused.reason, "page_words": words}
-    if args.json:
-        print(json.dumps({**summary, "url_model": url_exp.to_dict(),
-                          "page_model": page_exp.to_dict()}, ensure_ascii=False))
-        return EXIT_OK
-    print(f"{url.url}: {summary['category']} p={summary['confidence']:.3f} "
-          f"(stage {fused.stage}, {fused.reason}, {words} page words)")
-    _print_explanation(url_exp, "URL model:")
-    _print_explanation(page_exp, "page model:")
-    return EXIT_OK
+    page = None
+    if args.page:
+        from cascade.saved_pages import read_page_file
+
+        if len(args.urls) != 1:
+            raise UsageError("--page explains one URL at a time")
+        if not bundle.has_pages:
+            raise DataError(f"{args.model}: no page model here (train with pages)")
+        page = read_page_file(args.page)
+    bad = 0
+    for url in args.urls:
+        try:
+            exp = bundle.explain(url, page=page, top=args.top, n_classes=args.classes)
+        except InvalidURL as exc:
+            bad += 1
+            _eprint(f"explain: {exc}")
+            continue
+        if args.json:
+            print(json.dumps(exp.to_dict() if page is not None else exp.url_model.to_dict(),
+                             ensure_ascii=False))
+            continue
+        v = exp.verdict
+        if page is None:
+            print(exp.url_model.url)
+            _print_explanation(exp.url_model)
+            continue
+        print(f"{v.url}: {v.category} p={v.confidence:.3f} (stage {v.stage}, {v.reason}, "
+              f"{exp.page_words} page words)")
+        _print_explanation(exp.url_model, "URL model:")
+        _print_explanation(exp.page_model, "page model:")
+    return EXIT_PARTIAL if bad else EXIT_OK
 
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
+    from cascade.bundle import ModelBundle
     from cascade.evaluate import evaluate_proba
-    from cascade.models.url_model import UrlModel
 
-    model = UrlModel.load(args.model)
+    bundle = ModelBundle.load(args.model)
+    model = bundle.url_model
     stats = ReadStats()
-    keys, labels, counts, _ = _load_labelled(args, stats)
-    unknown = sorted(set(labels) - set(model.classes_))
-    if unknown:
-        raise CascadeError(f"labels not among the model's categories: {unknown[:20]}")
+    keys, labels, counts, _, _ = _load_labelled(args, stats)
+    _labels_known(labels, model.classes_, args.input)
     if not keys:
-        raise CascadeError(f"{args.input}: no usable labelled rows")
+        raise DataError(f"{args.input}: no usable labelled rows")
     metrics = evaluate_proba(model.predict_proba(keys), labels, model.classes_, counts=counts,
                              precision_target=args.precision_target)
-    metrics["model_version"] = model.version
-    text = json.dumps(metrics, indent=2, ensure_ascii=False)
-    if args.output and args.output != "-":
-        Path(args.output).write_text(text + "\n", encoding="utf-8")
-    else:
-        print(text)
-    return _finish(_summary(stats, evaluated=len(keys)), stats, args.quiet)
+    metrics["model_version"] = bundle.version
+    _write_json(metrics, args.output)
+    return _finish({"evaluated": len(keys)}, stats, args.quiet)
 
 
 def _fetch_setup(args: argparse.Namespace) -> tuple[Any, Any]:
     from cascade.fetch import FetchPolicy, StaticResolver, SystemResolver
     from cascade.fetch.resolver import parse_resolve_overrides
 
-    policy = FetchPolicy(
-        ports=tuple(args.port) if args.port else (80, 443),
-        deadline_s=args.deadline, max_bytes=args.max_bytes,
-        max_redirects=args.max_redirects, obey_robots=not args.ignore_robots,
-        allow_networks=tuple(args.allow_network or ()),
-    )
-    if args.operator:
-        policy = policy.with_operator(args.operator)
-    resolver = SystemResolver()
-    if args.resolve:
-        resolver = StaticResolver(parse_resolve_overrides(args.resolve), fallback=resolver)
+    try:
+        policy = FetchPolicy(
+            ports=tuple(args.port) if args.port else (80, 443),
+            deadline_s=args.deadline, max_bytes=args.max_bytes,
+            max_redirects=args.max_redirects, obey_robots=not args.ignore_robots,
+            allow_networks=tuple(args.allow_network or ()),
+        )
+        if args.operator:
+            policy = policy.with_operator(args.operator)
+        resolver = SystemResolver()
+        if args.resolve:
+            resolver = StaticResolver(parse_resolve_overrides(args.resolve), fallback=resolver)
+    except ValueError as exc:
+        raise UsageError(str(exc)) from None
     return policy, resolver
 
 
@@ -372,176 +321,125 @@ def cmd_fetch(args: argparse.Namespace) -> int:
         return failed
 
     failed = asyncio.run(run())
-    return _finish(_summary(stats, fetched=len(urls), not_ok=failed), stats, args.quiet)
+    return _finish({"fetched": len(urls), "not_ok": failed}, stats, args.quiet)
 
 
 def cmd_refine(args: argparse.Namespace) -> int:
     import asyncio
 
-    from cascade.bundle import ModelBundle, refine_verdict
+    from cascade.bundle import ModelBundle
     from cascade.fetch import Fetcher
 
     bundle = ModelBundle.load(args.model)
-    if bundle.page_model is None:
+    if not bundle.has_pages:
         _eprint("refine: this model has no page model (train with pages); URL verdicts only")
     policy, resolver = _fetch_setup(args)
     stats = ReadStats()
-    keyed = list(_keyed_records(_input_records(args, stats), stats))
+    keyed = list(_keyed(args, stats))
 
     async def run() -> dict[str, int]:
         counts: dict[str, int] = {}
         async with Fetcher(policy, resolver) as fetcher:
             with open_writer(args.output) as out:
                 async for result in fetcher.fetch_many([k.url for _, k in keyed]):
-                    verdict = refine_verdict(bundle, result.url, result, top_k=args.top)
+                    (verdict,) = bundle.verdicts([result.url], fetches=[result], top_k=args.top)
                     row = verdict.to_dict()
                     row["fetch"] = {"outcome": str(result.outcome), "status": result.status,
                                     "bytes_read": result.bytes_read,
                                     "elapsed_ms": round(result.elapsed_ms, 1),
                                     "detail": result.detail}
                     out.write(row)
-                    counts[verdict.reason] = counts.get(verdict.reason, 0) + 1
+                    counts[str(verdict.reason)] = counts.get(str(verdict.reason), 0) + 1
         return counts
 
     counts = asyncio.run(run())
-    return _finish(_summary(stats, refined=sum(counts.values()), by_reason=counts,
-                            model_version=bundle.version), stats, args.quiet)
+    return _finish({"refined": sum(counts.values()), "by_reason": counts,
+                    "model_version": bundle.version}, stats, args.quiet)
 
 
 def _budget(args: argparse.Namespace) -> Any:
     from cascade.budget import Budget
 
-    return Budget.parse(args.budget, args.budget_bytes, args.budget_seconds)
-
-
-def _fetch_costs(path: str | None, stats: ReadStats) -> Any:
-    """Per-domain fetch costs from earlier ``cascade fetch`` output (JSON Lines with
-    ``url``, ``outcome``, ``bytes_read``, ``elapsed_ms``). A row without those, or with a
-    negative or non-finite figure, is a bad line: counted, sampled, skipped."""
-    import math
-
-    from cascade.budget import FetchCosts
-
-    if not path:
-        return None
-    rows = []
-    for rec in read_records(path, fmt="jsonl", stats=stats):
-        extra = rec.extra
-        try:
-            key = normalize(rec.url)
-            if "outcome" not in extra or "bytes_read" not in extra or \
-                    "elapsed_ms" not in extra:
-                raise ValueError("not a fetch result (needs outcome, bytes_read, elapsed_ms)")
-            nbytes, ms = float(extra["bytes_read"]), float(extra["elapsed_ms"])
-            if not (math.isfinite(nbytes) and math.isfinite(ms) and nbytes >= 0 and ms >= 0):
-                raise ValueError("bytes_read and elapsed_ms must be finite numbers >= 0")
-        except (InvalidURL, ValueError, TypeError) as exc:
-            stats.records -= 1
-            stats.add_bad(rec.line_no, rec.url, f"fetch history: {exc}")
-            continue
-        rows.append({"domain": key.registered_domain or key.host,
-                     "ok": str(extra["outcome"]) == "ok", "bytes": nbytes, "ms": ms})
-    if not rows:
-        raise CascadeError(f"{path}: no usable fetch results (is it 'cascade fetch' output?)")
-    return FetchCosts.from_history(rows)
+    try:
+        return Budget.parse(args.budget, args.budget_bytes, args.budget_seconds)
+    except ValueError as exc:
+        raise UsageError(str(exc)) from None
 
 
 def cmd_plan(args: argparse.Namespace) -> int:
-
     from cascade.budget import plan
     from cascade.bundle import ModelBundle
+    from cascade.fetch_history import read_fetch_history
+    from cascade.lookups import merge_lookups
 
     bundle = ModelBundle.load(args.model)
     budget = _budget(args)
     stats = ReadStats()
-    keyed = list(_keyed_records(_input_records(args, stats), stats))
-    if bundle.cost_model is None:
-        _eprint("plan: this model has no cost model (train with pages); ranking by "
+    lookups = merge_lookups(_keyed(args, stats))
+    if bundle.value_model is None:
+        _eprint("plan: this model has no fetch-value model (train with pages); ranking by "
                 "the URL model's confidence, weighted by lookups")
-    merged: dict[str, list] = {}  # one entry per normalized URL; lookup counts summed
-    for rec, key in keyed:
-        entry = merged.setdefault(key.url, [key, 0])
-        entry[1] += rec.count
-    keys = [k for k, _ in merged.values()]
-    proba = bundle.url_model.predict_proba(keys) if keys else None
-    taxonomy = bundle.url_model.taxonomy_
-    costs = taxonomy.costs(bundle.classes)
     history_stats = ReadStats()
-    result = plan([k.url for k in keys], proba, bundle.cost_model, budget,
-                  counts=[c for _, c in merged.values()],
+    fetch_costs = read_fetch_history(args.fetch_history, history_stats) \
+        if args.fetch_history else None
+    keys = [lk.key for lk in lookups]
+    proba = bundle.url_proba(keys) if keys else None
+    result = plan([k.url for k in keys], proba, bundle.value_model, budget,
+                  counts=[lk.count for lk in lookups],
                   domains=[k.registered_domain or k.host for k in keys],
-                  fetch_costs=_fetch_costs(args.fetch_history, history_stats),
-                  min_gain=args.min_gain, costs=costs)
+                  fetch_costs=fetch_costs, min_gain=args.min_gain,
+                  costs=bundle.taxonomy.costs(bundle.classes))
     by_reason: dict[str, int] = {}
     with open_writer(args.output) as out:
         for item in result.fetch:
             out.write(item.to_dict())
         for item in result.skipped:
-            by_reason[item.reason] = by_reason.get(item.reason, 0) + 1
+            by_reason[str(item.reason)] = by_reason.get(str(item.reason), 0) + 1
             if args.all:
                 out.write(item.to_dict())
     extra: dict[str, Any] = {}
     if args.fetch_history:
         extra["fetch_history"] = history_stats.to_dict()
-    return _finish(_summary(stats, budget=budget.describe(), **result.totals,
-                            left_out=by_reason, model_version=bundle.version, **extra), stats,
-                   args.quiet)
+    return _finish({"budget": budget.describe(), **result.totals, "left_out": by_reason,
+                    "model_version": bundle.version, **extra}, stats, args.quiet)
 
 
 def cmd_report(args: argparse.Namespace) -> int:
     import numpy as np
 
-    from cascade.budget import confidence_gain
     from cascade.bundle import ModelBundle
-    from cascade.models.text_features import page_word_count
     from cascade.report import build_report, write_report
 
     bundle = ModelBundle.load(args.model)
     stats = ReadStats()
-    extras: list[dict[str, str]] = []
-    keys, labels, counts, _times = _load_labelled(args, stats, extras)
+    keys, labels, counts, _times, extras = _load_labelled(args, stats)
     if not keys:
-        raise CascadeError(f"{args.input}: no usable labelled rows")
+        raise DataError(f"{args.input}: no usable labelled rows")
     classes = bundle.classes
-    unknown = sorted({lab for lab in labels if lab not in classes})
-    if unknown:
-        raise CascadeError(f"{args.input}: labels not among the model's categories: "
-                           f"{unknown[:10]}")
+    _labels_known(labels, classes, args.input)
     y = np.array([classes.index(lab) for lab in labels])
-    pu = bundle.url_model.predict_proba(keys)
-    pf = pu.copy()
-    pages = _read_pages(args, extras, who="report")
-    rows = [i for i, p in enumerate(pages) if p is not None]
-    if bundle.page_model is not None and rows:
-        pp = bundle.page_model.predict_proba([pages[i] for i in rows])
-        words = np.array([page_word_count(pages[i]) for i in rows])
-        pf[rows] = bundle.fusion.predict_proba(pu[rows], pp, words)
-    else:
+    pages = _pages(args, extras, "report")
+    with_page = sum(p is not None for p in pages)
+    if not bundle.has_pages or not with_page:
         _eprint("report: no pages (or no page model): every fetch keeps the URL verdict")
-    if bundle.cost_model is not None:
-        gain = bundle.cost_model.expected_gain(
-            pu, [k.registered_domain or k.host for k in keys])["gain"]
-        planner = "cost model"
-    taxonomy = bundle.url_model.taxonomy_
-    costs = taxonomy.costs(classes)
-    if bundle.cost_model is None:
-        gain = confidence_gain(pu, costs)["gain"]
-        planner = "confidence (no cost model)"
+    pu = bundle.url_proba(keys)
+    pf = bundle.predict_proba(keys, pages, url_proba=pu)
+    gain = bundle.expected_gain(pu, [k.registered_domain or k.host for k in keys])["gain"]
     weighted = any(c != 1 for c in counts)
-    rep = build_report(y, pu, pf, gain, classes, costs=costs,
+    rep = build_report(y, pu, pf, gain, classes, costs=bundle.taxonomy.costs(classes),
                        counts=counts if weighted else None,
                        operating_budget=args.operating_budget,
                        precision_target=args.precision_target, seeds=args.seeds,
                        title=args.title,
                        context={"model": bundle.version, "labelled file": args.input,
-                                "rows with a page": len(rows), "planner": planner})
+                                "rows with a page": with_page,
+                                "planner": bundle.planner_name})
     paths = write_report(rep, args.out)
-    return _finish(_summary(stats, report=str(paths["html"]), json=str(paths["json"]),
-                            rows=len(keys), pages=len(rows),
-                            budget_table=[{"budget": r["budget"],
-                                           **{s: r[s]["accuracy"] for s in
-                                              ("planner", "lowest-confidence", "random",
-                                               "oracle")}} for r in rep["budget_table"]]),
+    table = [{"budget": r["budget"], **{s: r[s]["accuracy"] for s in
+                                        ("planner", "lowest-confidence", "random", "oracle")}}
+             for r in rep["budget_table"]]
+    return _finish({"report": str(paths["html"]), "json": str(paths["json"]),
+                    "rows": len(keys), "pages": with_page, "budget_table": table},
                    stats, args.quiet)
 
 
@@ -549,7 +447,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from cascade.demo import run_demo
 
     if not 0.0 <= args.budget <= 1.0:
-        raise ValueError(f"--budget must be a share of URLs between 0 and 1, not {args.budget}")
+        raise UsageError(f"--budget must be a share of URLs between 0 and 1, not {args.budget}")
     result = run_demo(Path(args.out), seed=args.seed, n_sites=args.sites, quiet=args.quiet,
                       budget_fraction=args.budget)
     if not args.quiet:
@@ -718,23 +616,29 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    """Run one command; returns its exit code (``EXIT_CODES``), never raises for the
+    user's mistakes."""
     parser = build_parser()
     args = parser.parse_args(argv)
     if not hasattr(args, "quiet"):
         args.quiet = False
     try:
         return int(args.func(args))
-    except CascadeError as exc:
-        _eprint(f"cascade {args.command}: error: {exc}")
-        return EXIT_FILE
-    except ValueError as exc:
-        _eprint(f"cascade {args.command}: error: {exc}")
-        return EXIT_USAGE
     except KeyboardInterrupt:
         _eprint(f"cascade {args.command}: interrupted")
-        return 130
+        return EXIT_INTERRUPTED
     except BrokenPipeError:
         return EXIT_OK
+    except Exception as exc:  # noqa: BLE001 - every error becomes an exit code here
+        code = exit_code_for(exc)
+        if code == EXIT_BUG:
+            _eprint("".join(traceback.format_exception(exc)).rstrip())
+            _eprint(f"cascade {args.command}: internal error ({type(exc).__name__}: {exc}). "
+                    "This is a bug in cascade, not in your input: please report it with the "
+                    "traceback above.")
+        else:
+            _eprint(f"cascade {args.command}: error: {exc}")
+        return code
 
 
 if __name__ == "__main__":  # pragma: no cover

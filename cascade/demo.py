@@ -8,7 +8,6 @@ from __future__ import annotations
 import json
 import sys
 import time
-from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -19,7 +18,6 @@ from cascade.io import open_writer
 from cascade.scenario import generate_telemetry, write_telemetry_csv
 from cascade.taxonomy import demo_taxonomy
 from cascade.urls import normalize
-from cascade.verdict import Verdict, url_verdicts
 
 
 def _say(quiet: bool, text: str) -> None:
@@ -29,7 +27,7 @@ def _say(quiet: bool, text: str) -> None:
 
 #: The demo's page-model settings: smaller than the library defaults so that ``make demo``
 #: trains all models in a few minutes on two cores (the figures in docs/ use the defaults).
-DEMO_PAGE_PARAMS = {"n_features": 2**18, "max_iter": 60}
+DEMO_PAGE_PARAMS: dict[str, Any] = {"n_features": 2**18, "max_iter": 60}
 DEMO_FOLDS = 3
 
 
@@ -47,6 +45,7 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
     from cascade.budget import Budget, plan
     from cascade.bundle import fit_bundle
     from cascade.extract import extract
+    from cascade.models.page_model import PageModel
     from cascade.report import build_report, write_report
     from cascade.scenario.pages import render_page
 
@@ -68,7 +67,8 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
                f"({DEMO_FOLDS} stacking folds; a few minutes)")
     t0 = time.perf_counter()
     bundle = fit_bundle([keys[i] for i in train], [labels[i] for i in train], pages,
-                        taxonomy=taxonomy, page_params=DEMO_PAGE_PARAMS, folds=DEMO_FOLDS,
+                        taxonomy=taxonomy, page_model=PageModel(**DEMO_PAGE_PARAMS),
+                        folds=DEMO_FOLDS,
                         seed=seed, progress=None if quiet else lambda m: _say(False, m))
     train_s = time.perf_counter() - t0
     model = bundle.url_model
@@ -91,7 +91,7 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
 
     budget = Budget(max_fraction=budget_fraction)
     domains = [k.registered_domain or k.host for k in test_keys]
-    fetch_plan = plan([k.url for k in test_keys], proba, bundle.cost_model, budget,
+    fetch_plan = plan([k.url for k in test_keys], proba, bundle.value_model, budget,
                       counts=test_counts, domains=domains)
     with open_writer(out / "plan.jsonl") as writer:
         for item in fetch_plan.fetch + fetch_plan.skipped:
@@ -103,23 +103,30 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
     results, fetch_report = _fetch_from_farm(records, plan_urls, [k.url for k in test_keys],
                                              budget, out, quiet)
     planned = {i for i, k in enumerate(test_keys) if k.url in fetch_report["by_plan"]}
-    verdicts, fused = _night_verdicts(bundle, test_keys, proba, results, planned)
+    night_fetches = {u: r for u, r in results.items() if u in fetch_report["by_plan"]}
+    reasons = {item.url: fetch_report["meter_reasons"].get(item.url, item.reason)
+               for item in fetch_plan.items}
+    verdicts = bundle.verdicts(test_keys, url_proba=proba, fetches=night_fetches,
+                               plan=reasons)
     with open_writer(out / "verdicts.jsonl") as writer:
         for v in verdicts:
             writer.write(v.to_dict())
+    # every held-out URL was fetched once, for measuring what other budgets would buy
+    fused = bundle.predict_proba(test_keys, bundle.pages_from_fetches(
+        [results.get(k.url) for k in test_keys]), url_proba=proba)
     y = np.array([model.classes_.index(labels[i]) for i in test])
     cascade_proba = proba.copy()
     rows = sorted(planned)
     cascade_proba[rows] = fused[rows]
     w = np.array(test_counts, dtype=np.float64)
-    gain = bundle.cost_model.expected_gain(proba, domains)["gain"]
+    gain = bundle.expected_gain(proba, domains)["gain"]
     rep = build_report(y, proba, fused, gain, model.classes_, costs=taxonomy.costs(),
                        counts=w, operating_budget=budget_fraction,
                        title="cascade demo: what each fetch budget buys",
                        context={"scenario": "Tallowmere Rail Cooperative (invented)",
                                 "model": bundle.version, "held-out URLs": len(test),
                                 "weighted by": "lookup counts",
-                                "planner": "cost model (value of information)"})
+                                "planner": bundle.planner_name})
     paths = write_report(rep, out / "budget-report")
 
     def acc(p: np.ndarray, weights: np.ndarray | None = None) -> float:
@@ -144,6 +151,7 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
         "seconds": round(time.perf_counter() - started, 1),
     }
     fetch_report["by_plan"] = len(fetch_report["by_plan"])
+    fetch_report.pop("meter_reasons")
     report = {"scenario": "Tallowmere Rail Cooperative (invented)", "seed": seed,
               "taxonomy": taxonomy.name, "model_version": bundle.version,
               "headline": headline, "metrics": metrics, "fetch": fetch_report,
@@ -155,41 +163,6 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
     (out / "summary.md").write_text(_summary_markdown(report), encoding="utf-8")
     _say(quiet, f"wrote verdicts.jsonl, report.json, summary.md, {paths['html']}")
     return report
-
-
-def _night_verdicts(bundle: Any, keys: list, proba: np.ndarray, results: dict,
-                    planned: set[int]) -> tuple[list[Verdict], np.ndarray]:
-    """The night's verdicts (fused where the plan fetched, else the URL model's with the
-    reason), and the fused probabilities of every row (for measuring other budgets)."""
-    from cascade.extract import extract_fetch
-    from cascade.models.text_features import page_word_count
-
-    fused = proba.copy()
-    ok_rows = [i for i, k in enumerate(keys) if results.get(k.url) is not None
-               and results[k.url].ok]
-    if ok_rows:
-        pages = [extract_fetch(results[keys[i].url]) for i in ok_rows]
-        pp = bundle.page_model.predict_proba(pages)
-        words = np.array([page_word_count(p) for p in pages])
-        fused[ok_rows] = bundle.fusion.predict_proba(proba[ok_rows], pp, words)
-    classes = bundle.classes
-    verdicts = []
-    for i, v in enumerate(url_verdicts([k.url for k in keys], proba, classes, bundle.version)):
-        if i not in planned:
-            verdicts.append(replace(v, needs_fetch=False, reason="budget-exhausted"
-                                    if v.needs_fetch else v.reason))
-            continue
-        result = results.get(keys[i].url)
-        if result is None or not result.ok:
-            outcome = "none" if result is None else str(result.outcome)
-            verdicts.append(replace(v, needs_fetch=False, reason=f"fetch:{outcome}"))
-            continue
-        order = np.argsort(-fused[i])[:3]
-        verdicts.append(replace(v, category=classes[order[0]],
-                                confidence=float(fused[i][order[0]]),
-                                top=tuple((classes[j], float(fused[i][j])) for j in order),
-                                stage="page", needs_fetch=False, reason="fused"))
-    return verdicts, fused
 
 
 def _fetch_from_farm(records: list, plan_urls: list[str], all_urls: list[str], budget: Any,
@@ -208,6 +181,7 @@ def _fetch_from_farm(records: list, plan_urls: list[str], all_urls: list[str], b
     outcomes: Counter[str] = Counter()
     results: dict[str, Any] = {}
     by_plan: set[str] = set()
+    meter_reasons: dict[str, str] = {}
     with SiteFarm(records) as farm:
         policy = FetchPolicy(ports=(farm.port,), allow_networks=("127.0.0.1/32",),
                              per_host_delay_s=0.0, deadline_s=5.0)
@@ -233,12 +207,14 @@ def _fetch_from_farm(records: list, plan_urls: list[str], all_urls: list[str], b
                         row["fetched_for"] = stage
                         writer.write(row)
 
-                    async for target, result, _why in fetch_within_budget(
+                    async for target, result, why in fetch_within_budget(
                             fetcher, [local(u) for u in plan_urls], meter,
                             window=policy.concurrency):
                         if result is not None:
                             by_plan.add(back[target])
                             keep(result, "plan")
+                        else:
+                            meter_reasons[back[target]] = str(why)
                     rest = [local(u) for u in all_urls if u not in by_plan]
                     async for result in fetcher.fetch_many(rest):
                         keep(result, "measurement")
@@ -250,6 +226,7 @@ def _fetch_from_farm(records: list, plan_urls: list[str], all_urls: list[str], b
                f"URLs for measurement only, in {seconds:.1f}s -> fetches.jsonl")
     return results, {"fetched": len(results), "outcomes": dict(outcomes),
                      "by_plan": by_plan, "plan_spent": meter.spent(),
+                     "meter_reasons": meter_reasons,
                      "pages_per_s": round(len(results) / seconds, 1) if seconds else None}
 
 

@@ -6,6 +6,17 @@ exceptions are for the caller's mistakes and for broken files.
 
 from __future__ import annotations
 
+__all__ = [
+    "CascadeError",
+    "DataError",
+    "InputFormatError",
+    "InvalidURL",
+    "ModelFileError",
+    "NotFittedError",
+    "TaxonomyError",
+    "UsageError",
+]
+
 
 class CascadeError(Exception):
     """Root of every error cascade raises on purpose."""
@@ -35,3 +46,12 @@ class InputFormatError(CascadeError, ValueError):
 
 class NotFittedError(CascadeError, AttributeError):
     """An estimator was used before ``fit``."""
+
+
+class UsageError(CascadeError, ValueError):
+    """An option or argument is wrong (a value out of range, options that clash)."""
+
+
+class DataError(CascadeError, ValueError):
+    """The input is readable but cannot serve the request: no usable rows, labels the model
+    does not know, too few rows to fit."""

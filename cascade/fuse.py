@@ -20,18 +20,21 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
-from pathlib import Path
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 from scipy.optimize import minimize
+from sklearn.base import BaseEstimator
 
-from cascade import __version__
+from cascade._validation import check_labels, check_proba
 from cascade.errors import ModelFileError, NotFittedError
 from cascade.models.calibration import softmax
-from cascade.models.model_files import load_model_dir, save_model_dir
+from cascade.models.model_files import ModelFileMixin
+from cascade.models.params import Constraint, Interval, OneOf, check_params
+from cascade.verdict import Reason, Stage, fetch_reason
 
-KIND = "fusion"
+__all__ = ["GATE_SIGNALS", "FusedRow", "Fusion"]
+
 _FLOOR = 1e-6
 GATE_SIGNALS = ("one", "url_top", "url_entropy", "page_top", "page_entropy", "agree",
                 "page_words")
@@ -42,8 +45,8 @@ class FusedRow:
     """One fused decision: probabilities, which stage decided, and why."""
 
     proba: np.ndarray
-    stage: str  # "page" (fused) or "url" (fell back)
-    reason: str  # "fused", "fetch:<outcome>", "page:thin", "page:none"
+    stage: Stage  # PAGE (fused) or URL (fell back)
+    reason: str  # Reason.FUSED, fetch_reason(outcome), Reason.PAGE_THIN, Reason.PAGE_NONE
 
 
 def _gates(pu: np.ndarray, pp: np.ndarray, words: np.ndarray) -> np.ndarray:
@@ -61,7 +64,7 @@ def _gates(pu: np.ndarray, pp: np.ndarray, words: np.ndarray) -> np.ndarray:
     ])
 
 
-class Fusion:
+class Fusion(ModelFileMixin, BaseEstimator):
     """Stacked, gated log-linear pool of two calibrated probability vectors.
 
     Parameters
@@ -73,6 +76,15 @@ class Fusion:
     class_terms : learn the per-class terms ``u``, ``v``, ``bias``; off, only the gates are
         learned, which is more robust when the deployed label mix differs from training.
     """
+
+    _model_kind = "fusion"
+    _version_prefix = "fusion"
+    _param_rules: ClassVar[dict[str, Constraint]] = {
+        "min_page_words": Interval(0, None, integer=True),
+        "alpha": Interval(0, None),
+        "max_iter": Interval(1, None, integer=True),
+        "class_terms": OneOf((True, False)),
+    }
 
     def __init__(self, min_page_words: int = 5, alpha: float = 0.1, max_iter: int = 500,
                  class_terms: bool = True) -> None:
@@ -98,12 +110,13 @@ class Fusion:
 
         ``y`` holds class indices in the two models' shared column order.
         """
-        pu = np.asarray(url_proba, dtype=np.float64)
-        pp = np.asarray(page_proba, dtype=np.float64)
-        y = np.asarray(y, dtype=np.int64)
+        self._check_params()
+        y = np.asarray(y, dtype=np.int64) if len(y) == 0 else check_labels(y, "y")
+        pu = check_proba(url_proba, len(y), "url_proba")
+        pp = check_proba(page_proba, len(y), "page_proba", n_classes=pu.shape[1])
         words = np.asarray(page_words, dtype=np.float64)
-        if pu.shape != pp.shape or pu.shape[0] != y.shape[0] or words.shape != y.shape:
-            raise ValueError("url_proba, page_proba, y and page_words must have matching rows")
+        if words.shape != y.shape:
+            raise ValueError("page_words must hold one number per row")
         keep = words >= self.min_page_words
         pu, pp, y, words = pu[keep], pp[keep], y[keep], words[keep]
         n, k = pu.shape
@@ -147,6 +160,9 @@ class Fusion:
                           "seconds": round(time.perf_counter() - started, 3)}
         return self
 
+    def _check_params(self) -> None:
+        check_params(self, self._param_rules)
+
     def _check_fitted(self) -> None:
         if not hasattr(self, "theta_"):
             raise NotFittedError("this Fusion is not fitted yet: call fit() or load()")
@@ -155,11 +171,12 @@ class Fusion:
                       page_words: np.ndarray) -> np.ndarray:
         """Fused probabilities; rows whose page is too thin keep the URL probabilities."""
         self._check_fitted()
-        pu = np.atleast_2d(np.asarray(url_proba, dtype=np.float64))
-        pp = np.atleast_2d(np.asarray(page_proba, dtype=np.float64))
+        pu = check_proba(np.atleast_2d(url_proba), None, "url_proba", n_classes=self.n_classes_)
+        pp = check_proba(np.atleast_2d(page_proba), len(pu), "page_proba",
+                         n_classes=self.n_classes_)
         words = np.atleast_1d(np.asarray(page_words, dtype=np.float64))
-        if pu.shape[1] != self.n_classes_ or pp.shape != pu.shape:
-            raise ValueError(f"expected probabilities over {self.n_classes_} classes")
+        if words.shape != (len(pu),):
+            raise ValueError("page_words must hold one number per row")
         Lu, Lp = np.log(np.clip(pu, _FLOOR, 1)), np.log(np.clip(pp, _FLOOR, 1))
         fused = softmax(self._logits(self.theta_, Lu, Lp, _gates(pu, pp, words)))
         thin = words < self.min_page_words
@@ -170,15 +187,15 @@ class Fusion:
                 page_words: int = 0, fetch_outcome: str = "ok") -> FusedRow:
         """One URL: the fused verdict, or the URL verdict with the reason it was kept."""
         pu = np.asarray(url_proba, dtype=np.float64)
-        if fetch_outcome != "ok":
-            return FusedRow(pu, "url", f"fetch:{fetch_outcome}")
+        if str(fetch_outcome) != "ok":
+            return FusedRow(pu, Stage.URL, fetch_reason(fetch_outcome))
         if page_proba is None:
-            return FusedRow(pu, "url", "page:none")
+            return FusedRow(pu, Stage.URL, Reason.PAGE_NONE)
         if page_words < self.min_page_words:
-            return FusedRow(pu, "url", "page:thin")
+            return FusedRow(pu, Stage.URL, Reason.PAGE_THIN)
         fused = self.predict_proba(pu[None, :], np.asarray(page_proba)[None, :],
                                    np.array([page_words]))[0]
-        return FusedRow(fused, "page", "fused")
+        return FusedRow(fused, Stage.PAGE, Reason.FUSED)
 
     def describe(self) -> dict[str, Any]:
         """The learned gates, readable: how much each signal moves each model's weight."""
@@ -190,43 +207,16 @@ class Fusion:
                                                   strict=True))}
 
     # ------------------------------------------------------------------ files
-    def save(self, path: str | Path, links: dict[str, str] | None = None,
-             metrics: dict[str, Any] | None = None) -> Path:
-        """Write the fusion to a model directory; ``links`` names the model versions it was
-        fitted with, so a loader can refuse a fusion paired with other models."""
-        self._check_fitted()
-        meta = {"cascade_version": __version__,
-                "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-                "params": self.get_params(), "n_classes": self.n_classes_,
-                "gate_signals": list(GATE_SIGNALS), "links": links or {},
-                "training": self.training_, "metrics": metrics or {}}
-        return save_model_dir(path, KIND, meta, {"theta": self.theta_})
+    def _file_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        return ({"n_classes": self.n_classes_, "gate_signals": list(GATE_SIGNALS),
+                 "training": self.training_}, {"theta": self.theta_})
 
-    @classmethod
-    def load(cls, path: str | Path) -> tuple[Fusion, dict[str, str]]:
-        """Read a fusion directory; returns it and the model versions it was fitted with."""
-        meta, arrays = load_model_dir(path, KIND)
-        try:
-            fusion = cls(**meta["params"])
-            k = int(meta["n_classes"])
-            theta = arrays["theta"].astype(np.float64)
-            if list(meta["gate_signals"]) != list(GATE_SIGNALS) or \
-                    theta.shape != (2 * len(GATE_SIGNALS) + 3 * k,):
-                raise ModelFileError(f"{path}: fusion parameters do not match this version")
-            fusion.theta_ = theta
-            fusion.n_classes_ = k
-            fusion.training_ = meta.get("training", {})
-            links = {str(a): str(b) for a, b in meta.get("links", {}).items()}
-        except (KeyError, TypeError, ValueError) as exc:
-            if isinstance(exc, ModelFileError):
-                raise
-            raise ModelFileError(f"{path}: model.json is missing or has a bad field: {exc}") \
-                from None
-        return fusion, links
-
-    def get_params(self) -> dict[str, Any]:
-        return {"min_page_words": self.min_page_words, "alpha": self.alpha,
-                "max_iter": self.max_iter, "class_terms": self.class_terms}
-
-    def __repr__(self) -> str:
-        return "Fusion(" + ", ".join(f"{k}={v!r}" for k, v in self.get_params().items()) + ")"
+    def _restore_state(self, meta: dict[str, Any], arrays: dict[str, np.ndarray],
+                       where: str) -> None:
+        k = int(meta["n_classes"])
+        theta = arrays["theta"].astype(np.float64)
+        if list(meta["gate_signals"]) != list(GATE_SIGNALS) or \
+                theta.shape != (2 * len(GATE_SIGNALS) + 3 * k,):
+            raise ModelFileError(f"{where}: fusion parameters do not match this version")
+        self.theta_ = theta
+        self.n_classes_ = k

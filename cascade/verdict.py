@@ -8,11 +8,51 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
+from enum import StrEnum
 from typing import Any
 
 import numpy as np
 
-STAGES = ("url", "page", "label")
+__all__ = ["STAGES", "Reason", "Stage", "Verdict", "fetch_reason", "url_verdicts", "utc_now"]
+
+
+class Stage(StrEnum):
+    """Which stage decided a verdict."""
+
+    URL = "url"  # the URL model alone
+    PAGE = "page"  # the page text fused with the URL model
+    LABEL = "label"  # an analyst's label: always wins over a model's verdict
+
+
+class Reason(StrEnum):
+    """Why a verdict (or a plan entry) is what it is: one vocabulary for the planner, the
+    fetch meter, fusion and every verdict. docs/architecture.md has the table."""
+
+    # URL stage, no plan involved
+    CONFIDENT = "confident"  # confidence at or above the fetch threshold
+    UNDER_THRESHOLD = "under-threshold"  # below it: worth refining when the budget allows
+    # the planner's decision for one URL
+    SELECTED = "selected"  # in the fetch list
+    NO_GAIN = "no-gain"  # a fetch is not expected to improve the verdict
+    BUDGET_COUNT = "budget:count"  # left out: the count (or share) limit was reached
+    BUDGET_BYTES = "budget:bytes"  # left out: it would pass the byte limit
+    BUDGET_SECONDS = "budget:seconds"  # left out: it would pass the fetch-seconds limit
+    # after a planned fetch
+    FUSED = "fused"  # page text fused in (stage "page")
+    PAGE_THIN = "page:thin"  # the page has too few words to trust; URL verdict kept
+    PAGE_NONE = "page:none"  # no fetch result for this URL; URL verdict kept
+    NO_PAGE_MODEL = "no-page-model"  # the model directory has no page model
+    # an analyst
+    ANALYST = "analyst"  # stage "label"
+
+
+def fetch_reason(outcome: object) -> str:
+    """The reason of a verdict whose fetch failed: ``fetch:`` and the ``FetchOutcome`` code
+    (``fetch:timeout``, ``fetch:blocked-address``, ...)."""
+    return f"fetch:{outcome}"
+
+
+STAGES = tuple(s.value for s in Stage)
 
 
 def utc_now() -> str:
@@ -24,22 +64,23 @@ class Verdict:
     """One URL's category. ``confidence`` is the calibrated probability of ``category``;
     ``top`` the k best ``(category, probability)``; ``stage`` is ``"url"`` (URL model only),
     ``"page"`` (page text fused in) or ``"label"`` (an analyst's label); ``reason`` says why
-    this stage (``"confident"``, ``"under-threshold"``, ``"budget-exhausted"``,
-    ``"fetch:timeout"``, ...)."""
+    this stage (a ``Reason`` such as ``"confident"``, ``"budget:count"``, ``"fused"``, or
+    ``"fetch:<outcome>"``)."""
 
     url: str
     category: str
     confidence: float
     top: tuple[tuple[str, float], ...]
-    stage: str
+    stage: Stage | str
     needs_fetch: bool
-    reason: str
+    reason: Reason | str
     model_version: str
     decided_at: str = field(default_factory=utc_now)
 
     def __post_init__(self) -> None:
         if self.stage not in STAGES:
             raise ValueError(f"stage must be one of {STAGES}, not {self.stage!r}")
+        object.__setattr__(self, "stage", Stage(self.stage))
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -47,9 +88,9 @@ class Verdict:
             "category": self.category,
             "confidence": round(self.confidence, 6),
             "top": [[c, round(p, 6)] for c, p in self.top],
-            "stage": self.stage,
+            "stage": str(self.stage),
             "needs_fetch": self.needs_fetch,
-            "reason": self.reason,
+            "reason": str(self.reason),
             "model_version": self.model_version,
             "decided_at": self.decided_at,
         }
@@ -78,9 +119,9 @@ def url_verdicts(
             category=classes[best[0]],
             confidence=conf,
             top=tuple((classes[j], float(proba[i, j])) for j in best),
-            stage="url",
+            stage=Stage.URL,
             needs_fetch=needs,
-            reason="under-threshold" if needs else "confident",
+            reason=Reason.UNDER_THRESHOLD if needs else Reason.CONFIDENT,
             model_version=model_version,
             decided_at=now,
         ))

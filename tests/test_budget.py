@@ -1,5 +1,5 @@
-"""Budget, cost model and planner: the plan never overruns a limit, ranks by expected gain
-per unit of cost, weights by lookups, and the cost model's files are safe."""
+"""Budget, fetch-value model and planner: the plan never overruns a limit, ranks by expected
+gain per unit of cost, weights by lookups, and the fetch-value model's files are safe."""
 
 from __future__ import annotations
 
@@ -10,17 +10,15 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from cascade.budget import (
+from cascade.budget import Budget, FetchCosts, plan
+from cascade.errors import ModelFileError, NotFittedError
+from cascade.fetch_value import (
     OUTCOMES,
-    Budget,
-    CostModel,
     DomainHistory,
-    FetchCosts,
+    FetchValueModel,
     confidence_gain,
     fetch_outcomes,
-    plan,
 )
-from cascade.errors import ModelFileError, NotFittedError
 
 
 def _synthetic(n: int, k: int = 4, seed: int = 0):
@@ -42,7 +40,7 @@ def _synthetic(n: int, k: int = 4, seed: int = 0):
 @pytest.fixture(scope="module")
 def fitted():
     y, pu, pf = _synthetic(3000)
-    return CostModel().fit(pu, pf, y, costs=np.array([1.0, 1.0, 1.0, 4.0]))
+    return FetchValueModel().fit(pu, pf, y, costs=np.array([1.0, 1.0, 1.0, 4.0]))
 
 
 def test_budget_parse_forms() -> None:
@@ -75,7 +73,7 @@ def test_fetch_outcomes_match_their_definition() -> None:
         "kept-right", "broke", "fixed", "kept-wrong"]
 
 
-def test_cost_model_ranks_better_than_chance(fitted) -> None:
+def test_fetch_value_model_ranks_better_than_chance(fitted) -> None:
     y, pu, pf = _synthetic(2000, seed=1)
     gain = fitted.expected_gain(pu)["gain"]
     fixes = fetch_outcomes(y, pu, pf) == 2
@@ -94,10 +92,10 @@ def test_costly_category_raises_the_gain(fitted) -> None:
     assert fitted.expected_gain(b)["gain"][0] > fitted.expected_gain(a)["gain"][0]
 
 
-def test_cost_model_save_load_round_trip_and_refuses_tampering(fitted, tmp_path) -> None:
+def test_fetch_value_model_save_load_round_trip_and_refuses_tampering(fitted, tmp_path) -> None:
     path = fitted.save(tmp_path / "cost", links={"bundle": "v1"})
-    loaded, links = CostModel.load(path)
-    assert links == {"bundle": "v1"}
+    loaded = FetchValueModel.load(path)
+    assert loaded.links_ == {"bundle": "v1"}
     _, pu, _ = _synthetic(50, seed=3)
     np.testing.assert_allclose(loaded.expected_gain(pu)["gain"],
                                fitted.expected_gain(pu)["gain"])
@@ -105,17 +103,17 @@ def test_cost_model_save_load_round_trip_and_refuses_tampering(fitted, tmp_path)
     meta["params"]["C"] = 99.0
     (path / "model.json").write_text(json.dumps(meta))
     with pytest.raises(ModelFileError, match="digest"):
-        CostModel.load(path)
+        FetchValueModel.load(path)
     with pytest.raises(ModelFileError):
         from cascade.fuse import Fusion
-        Fusion.load(fitted.save(tmp_path / "cost2"))  # a cost model is not a fusion
+        Fusion.load(fitted.save(tmp_path / "cost2"))  # a fetch-value model is not a fusion
 
 
 def test_unfitted_and_bad_inputs_raise_clear_errors() -> None:
     with pytest.raises(NotFittedError):
-        CostModel().expected_gain(np.full((1, 3), 1 / 3))
+        FetchValueModel().expected_gain(np.full((1, 3), 1 / 3))
     with pytest.raises(ValueError, match="at least 10"):
-        CostModel().fit(np.full((3, 2), 0.5), np.full((3, 2), 0.5), np.array([0, 1, 0]))
+        FetchValueModel().fit(np.full((3, 2), 0.5), np.full((3, 2), 0.5), np.array([0, 1, 0]))
 
 
 def test_plan_orders_by_gain_and_gives_reasons(fitted) -> None:
@@ -222,17 +220,17 @@ def test_failed_refit_keeps_the_fitted_state(fitted) -> None:
     np.testing.assert_array_equal(fitted.costs_, before)
 
 
-def test_cost_model_file_with_wrong_shapes_is_refused(fitted, tmp_path) -> None:
+def test_fetch_value_model_file_with_wrong_shapes_is_refused(fitted, tmp_path) -> None:
     from cascade.models.model_files import load_model_dir, save_model_dir
 
     path = fitted.save(tmp_path / "cost")
-    meta, arrays = load_model_dir(path, "cost-model")
+    meta, arrays = load_model_dir(path, "fetch-value-model")
     arrays["scale"] = arrays["scale"][:-1]  # consistently re-hashed, but the wrong shape
     body = {k: v for k, v in meta.items()
             if k not in ("format", "format_version", "kind", "files", "content_sha256")}
-    save_model_dir(tmp_path / "bad", "cost-model", body, arrays)
+    save_model_dir(tmp_path / "bad", "fetch-value-model", body, arrays)
     with pytest.raises(ModelFileError, match="shape"):
-        CostModel.load(tmp_path / "bad")
+        FetchValueModel.load(tmp_path / "bad")
 
 
 def test_fallback_plan_weighs_category_costs() -> None:

@@ -55,14 +55,14 @@ def test_actual_spend_never_exceeds_any_limit(sizes, count, max_bytes, max_secon
     fetcher = _ScriptedFetcher(sizes, ms)
     rows = asyncio.run(_run(fetcher, urls, meter, window))
     assert len(rows) == n and {u for u, _, _ in rows} == set(urls)
-    fetched = [r for _, r, why in rows if why == "fetched"]
+    fetched = [r for _, r, why in rows if why == "selected"]
     assert fetcher.calls == len(fetched) <= min(count, n)
     assert sum(r.bytes_read for r in fetched) == meter.bytes_spent <= max_bytes
     assert sum(r.elapsed_ms for r in fetched) / 1000 == pytest.approx(meter.seconds_spent)
     assert meter.seconds_spent <= max_seconds + 1e-9
     # Fetched ones come first in plan order; the rest are all left with the stopping limit.
-    reasons = [why for _, _, why in rows if why != "fetched"]
-    assert len(set(reasons)) <= 1 and all(w.startswith("budget-exhausted:") for w in reasons)
+    reasons = [why for _, _, why in rows if why != "selected"]
+    assert len(set(reasons)) <= 1 and all(w.startswith("budget:") for w in reasons)
 
 
 def test_small_pages_leave_room_for_more_fetches_than_the_worst_case() -> None:
@@ -71,9 +71,9 @@ def test_small_pages_leave_room_for_more_fetches_than_the_worst_case() -> None:
     meter = BudgetMeter(Budget(max_bytes=2500), 30, worst_bytes=1000, worst_seconds=1.0)
     rows = asyncio.run(_run(_ScriptedFetcher(sizes, [1.0] * 30),
                             [f"http://farm.test/{i}" for i in range(30)], meter))
-    fetched = sum(why == "fetched" for _, _, why in rows)
+    fetched = sum(why == "selected" for _, _, why in rows)
     assert fetched > 2 and meter.bytes_spent <= 2500
-    assert rows[-1][2] == "budget-exhausted:bytes"
+    assert rows[-1][2] == "budget:bytes"
 
 
 def test_meter_against_the_loopback_site_farm() -> None:
@@ -90,7 +90,7 @@ def test_meter_against_the_loopback_site_farm() -> None:
                 return await _run(fetcher, urls, meter, window=4)
 
         rows = asyncio.run(go())
-    fetched = [r for _, r, why in rows if why == "fetched"]
+    fetched = [r for _, r, why in rows if why == "selected"]
     assert 0 < len(fetched) <= 25
     assert sum(r.bytes_read for r in fetched) <= 200 << 10  # what was really read
     assert all(r.ok for r in fetched)

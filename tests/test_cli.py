@@ -135,4 +135,4 @@ def test_plan_with_a_url_only_model_ranks_by_confidence(workdir: Path, capsys) -
     rows = [json.loads(line) for line in captured.out.splitlines()]
     # chance of a wrong verdict x category cost x lookups, best first
     assert len(rows) == 2 and rows[0]["expected_gain"] >= rows[1]["expected_gain"] > 0
-    assert "no cost model" in captured.err
+    assert "no fetch-value model" in captured.err

@@ -73,9 +73,9 @@ def test_explain_with_page_shows_page_words(trained, capsys) -> None:
     assert "body:" in out or "title:" in out
 
 
-def test_train_with_pages_writes_a_cost_model(trained) -> None:
+def test_train_with_pages_writes_a_fetch_value_model(trained) -> None:
     root, _ = trained
-    assert (root / "model" / "cost" / "model.json").is_file()
+    assert (root / "model" / "fetch-value" / "model.json").is_file()
 
 
 def test_plan_writes_the_fetch_list_within_budget(trained, capsys) -> None:
@@ -109,7 +109,7 @@ def test_report_writes_html_and_json(trained, tmp_path) -> None:
                  "--pages", str(root / "saved"), "--out", str(tmp_path / "rep"), "--seeds", "2"])
     assert code == EXIT_OK
     rep = json.loads((tmp_path / "rep" / "report.json").read_text())
-    assert rep["context"]["planner"] == "cost model"
+    assert rep["context"]["planner"] == "fetch-value model"
     assert rep["context"]["rows with a page"] == 480
     assert (tmp_path / "rep" / "report.html").stat().st_size > 10_000
 

@@ -15,7 +15,7 @@ def test_demo_runs_the_whole_cascade(tmp_path) -> None:
     for name in ("telemetry.csv", "plan.jsonl", "fetches.jsonl", "verdicts.jsonl",
                  "report.json", "summary.md", "budget-report/report.html",
                  "model/model.json", "model/page/model.json", "model/fusion/model.json",
-                 "model/cost/model.json"):
+                 "model/fetch-value/model.json"):
         assert (out / name).is_file(), name
     report = json.loads((out / "report.json").read_text())
     h = report["headline"]
@@ -25,8 +25,8 @@ def test_demo_runs_the_whole_cascade(tmp_path) -> None:
     verdicts = [json.loads(line) for line in (out / "verdicts.jsonl").read_text().splitlines()]
     fused = [v for v in verdicts if v["stage"] == "page"]
     assert len(fused) <= h["fetched_by_plan"]
-    assert {v["reason"] for v in verdicts} <= {"fused", "budget-exhausted", "confident",
-                                              "under-threshold"} | {
+    assert {v["reason"] for v in verdicts} <= {"fused", "budget:count", "no-gain", "confident",
+                                              "page:thin", "under-threshold"} | {
         v["reason"] for v in verdicts if v["reason"].startswith("fetch:")}
     # Every fetch stayed on the loopback farm and none was refused by the address guard.
     fetches = [json.loads(line) for line in (out / "fetches.jsonl").read_text().splitlines()]

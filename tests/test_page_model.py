@@ -13,6 +13,7 @@ from cascade.errors import ModelFileError, NotFittedError
 from cascade.extract import extract
 from cascade.fuse import Fusion
 from cascade.models.page_model import PageModel
+from cascade.models.url_model import UrlModel
 from cascade.scenario import generate_telemetry
 from cascade.scenario.pages import render_page
 
@@ -113,8 +114,8 @@ def test_bundle_trains_saves_and_checks_links(scenario, tmp_path):
     records, pages = scenario
     rows = records[:500]
     bundle = fit_bundle([r.url for r in rows], [r.label for r in rows], pages[:500],
-                        url_params={"n_features": 2**16, "max_iter": 40},
-                        page_params={"n_features": 2**16, "max_iter": 40}, folds=3)
+                        url_model=UrlModel(n_features=2**16, max_iter=40),
+                        page_model=PageModel(n_features=2**16, max_iter=40), folds=3)
     assert bundle.page_model is not None and bundle.fusion is not None
     assert bundle.held_out["url_proba"].shape[0] == bundle.report["stacked_rows"]
     path = bundle.save(tmp_path / "bundle")
@@ -129,7 +130,7 @@ def test_bundle_trains_saves_and_checks_links(scenario, tmp_path):
         ModelBundle.load(path)
 
 
-def test_bundle_with_every_page_on_one_domain_trains_without_a_cost_model() -> None:
+def test_bundle_with_every_page_on_one_domain_trains_without_a_fetch_value_model() -> None:
     from cascade.bundle import fit_bundle
     from cascade.extract import extract as _extract
 
@@ -139,7 +140,7 @@ def test_bundle_with_every_page_on_one_domain_trains_without_a_cost_model() -> N
     pages = [None] * 90 + [_extract(f"<title>{labels[90 + i]} page</title><p>{labels[90 + i]} "
                                     "words here and more words</p>") for i in range(30)]
     bundle = fit_bundle(urls, labels, pages, folds=3,
-                        url_params={"n_features": 2**12, "max_iter": 20},
-                        page_params={"n_features": 2**12, "max_iter": 20})
-    assert bundle.cost_model is None
-    assert "not fitted" in str(bundle.report.get("cost_model", "not fitted"))
+                        url_model=UrlModel(n_features=2**12, max_iter=20),
+                        page_model=PageModel(n_features=2**12, max_iter=20))
+    assert bundle.value_model is None
+    assert "not fitted" in str(bundle.report.get("fetch_value_model", "not fitted"))

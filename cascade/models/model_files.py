@@ -142,3 +142,96 @@ def data_digest(items: list[str], labels: list[str]) -> str:
         digest.update(str(label).encode("utf-8"))
         digest.update(b"\n")
     return digest.hexdigest()
+
+
+def _to_json(value: Any) -> Any:
+    """Parameter values as JSON keeps them (tuples become lists)."""
+    if isinstance(value, tuple | list):
+        return [_to_json(v) for v in value]
+    if isinstance(value, dict):
+        return {str(k): _to_json(v) for k, v in value.items()}
+    return value
+
+
+def _from_json(cls: type, params: dict[str, Any]) -> dict[str, Any]:
+    """Lists back to tuples where the constructor's default is a tuple."""
+    import inspect
+
+    if not isinstance(params, dict):
+        raise TypeError("params is not a mapping")
+    defaults = {name: p.default for name, p in inspect.signature(cls.__init__).parameters.items()}
+    out = {}
+    for name, value in params.items():
+        if isinstance(defaults.get(name), tuple) and isinstance(value, list):
+            value = tuple(value)
+        out[name] = value
+    return out
+
+
+class ModelFileMixin:
+    """``save``/``load`` for every fitted class, in the one safe format of this module.
+
+    A subclass names its ``_model_kind`` (checked on load, so a page model is never read as
+    a URL model) and ``_version_prefix``, and supplies ``_file_state()`` (extra metadata and
+    the arrays to store) and ``_restore_state(meta, arrays, where)``. Constructor parameters
+    are stored as ``params`` and given back to the constructor on load, so a loaded model has
+    the parameters it was fitted with. ``links`` names the versions of the models this one
+    was fitted beside (fusion, fetch-value model); after ``load`` they are in ``links_``.
+    """
+
+    _model_kind: str = ""
+    _version_prefix: str = ""
+
+    def _file_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        raise NotImplementedError
+
+    def _restore_state(self, meta: dict[str, Any], arrays: dict[str, np.ndarray],
+                       where: str) -> None:
+        raise NotImplementedError
+
+    def _check_fitted(self) -> None:
+        raise NotImplementedError
+
+    @property
+    def version(self) -> str:
+        """``<prefix>-`` and the first 12 hex digits of the saved file's content digest."""
+        return getattr(self, "version_", f"{self._version_prefix}-unsaved")
+
+    def save(self, path: str | Path, metrics: dict[str, Any] | None = None,
+             links: dict[str, str] | None = None) -> Path:
+        """Write ``model.json`` + ``weights.npz`` to directory ``path`` (atomically)."""
+        import time
+
+        from cascade import __version__
+
+        self._check_fitted()
+        extra, arrays = self._file_state()
+        meta = {"cascade_version": __version__,
+                "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                "params": _to_json(self.get_params()),  # type: ignore[attr-defined]
+                **extra, "links": dict(links or {}), "metrics": metrics or {}}
+        target = save_model_dir(path, self._model_kind, meta, arrays)
+        written = json.loads((target / META_FILE).read_text(encoding="utf-8"))
+        self.version_ = f"{self._version_prefix}-{written['content_sha256'][:12]}"
+        self.links_ = dict(links or {})
+        self.metrics_ = metrics or {}
+        return target
+
+    @classmethod
+    def load(cls, path: str | Path) -> Any:
+        """Read a model directory, verifying every digest; raises ``ModelFileError``."""
+        meta, arrays = load_model_dir(path, cls._model_kind)
+        try:
+            model = cls(**_from_json(cls, meta["params"]))
+            model._check_params()  # type: ignore[attr-defined]
+            model._restore_state(meta, arrays, str(path))
+            model.training_ = meta.get("training", {})
+            model.metrics_ = meta.get("metrics", {})
+            model.links_ = {str(a): str(b) for a, b in dict(meta.get("links") or {}).items()}
+            model.version_ = f"{cls._version_prefix}-{str(meta['content_sha256'])[:12]}"
+        except ModelFileError:
+            raise
+        except (KeyError, TypeError, ValueError, AttributeError, IndexError) as exc:
+            raise ModelFileError(f"{path}: model.json is missing or has a bad field: {exc}") \
+                from None
+        return model
