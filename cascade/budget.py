@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 
+from cascade._validation import check_proba
 from cascade.fetch_value import DomainHistory, FetchValueModel, confidence_gain
 from cascade.verdict import Reason
 
@@ -258,9 +259,7 @@ def plan(
     domain features; without it every URL is a first visit.
     """
     n = len(urls)
-    pu = np.atleast_2d(np.asarray(url_proba, dtype=np.float64)) if n else np.zeros((0, 1))
-    if len(pu) != n:
-        raise ValueError("urls and url_proba must have the same length")
+    pu = check_proba(np.atleast_2d(url_proba), n, "url_proba") if n else np.zeros((0, 1))
     w = np.ones(n) if counts is None else np.asarray(counts, dtype=np.float64)
     if w.shape != (n,) or (w < 0).any() or not np.isfinite(w).all():
         raise ValueError("counts must be one finite number >= 0 per URL")

@@ -32,6 +32,8 @@ from cascade.errors import (
 )
 from cascade.io import InputRecord, Progress, ReadStats, open_writer, read_records
 
+__all__ = ["EXIT_CODES", "build_parser", "exit_code_for", "main"]
+
 EXIT_OK, EXIT_BUG, EXIT_USAGE, EXIT_PARTIAL, EXIT_FILE, EXIT_INTERRUPTED = 0, 1, 2, 3, 4, 130
 
 #: Exception type to exit code, most specific first; anything else is a bug (exit 1).

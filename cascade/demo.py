@@ -19,6 +19,8 @@ from cascade.scenario import generate_telemetry, write_telemetry_csv
 from cascade.taxonomy import demo_taxonomy
 from cascade.urls import normalize
 
+__all__ = ["DEMO_FOLDS", "DEMO_PAGE_PARAMS", "run_demo"]
+
 
 def _say(quiet: bool, text: str) -> None:
     if not quiet:

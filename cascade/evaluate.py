@@ -18,6 +18,8 @@ import numpy as np
 from cascade.metrics import summarize
 from cascade.urls import UrlKey
 
+__all__ = ["Split", "evaluate_proba", "evaluation_split"]
+
 
 @dataclass(frozen=True)
 class Split:

@@ -17,6 +17,8 @@ import numpy as np
 
 from cascade.errors import TaxonomyError
 
+__all__ = ["Category", "RISK_LEVELS", "Taxonomy", "demo_taxonomy", "load_taxonomy"]
+
 # A name is what reports and verdicts print: 1-64 printable characters, no outer spaces.
 _NAME = re.compile(r"^[^\s\x00-\x1f\x7f](?:[^\x00-\x1f\x7f]{0,62}[^\s\x00-\x1f\x7f])?$")
 RISK_LEVELS = ("low", "high")

@@ -10,6 +10,8 @@ from __future__ import annotations
 import numpy as np
 from scipy.optimize import minimize_scalar
 
+__all__ = ["fit_temperature", "softmax"]
+
 
 def softmax(logits: np.ndarray) -> np.ndarray:
     """Row-wise softmax, stable for large logits."""

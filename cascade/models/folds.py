@@ -11,6 +11,8 @@ from collections.abc import Sequence
 
 import numpy as np
 
+__all__ = ["group_folds"]
+
 
 def group_folds(groups: Sequence[str], n_folds: int, seed: int, min_rows: int = 50) -> np.ndarray:
     """Fold number per row (0..n_folds-1), whole groups to a fold by a seeded shuffle.

@@ -19,6 +19,16 @@ from hashlib import blake2b
 
 import numpy as np
 
+__all__ = [
+    "END",
+    "MAX_TOKEN_BYTES",
+    "START",
+    "char_ngram_hashes",
+    "char_ngram_hashes_one",
+    "columns",
+    "token_hashes",
+]
+
 _P = np.uint64(0x100000001B3)  # the FNV-1a 64-bit prime, as the polynomial base
 _MIX = np.uint64(0x9E3779B97F4A7C15)  # 2**64 / golden ratio, odd: multiplicative hashing
 _GOLDEN = 0x9E3779B97F4A7C15

@@ -11,6 +11,8 @@ import numpy as np
 
 from cascade.errors import ModelFileError
 
+__all__ = ["compact_table", "pack_rows", "unpack_rows"]
+
 
 def compact_table(weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """``(row_of, table)``: ``table[row_of[c]]`` is ``weights[c]`` for every column ``c``."""

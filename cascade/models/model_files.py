@@ -22,6 +22,17 @@ import numpy as np
 
 from cascade.errors import ModelFileError
 
+__all__ = [
+    "FORMAT_NAME",
+    "FORMAT_VERSION",
+    "META_FILE",
+    "ModelFileMixin",
+    "WEIGHTS_FILE",
+    "data_digest",
+    "load_model_dir",
+    "save_model_dir",
+]
+
 FORMAT_NAME = "cascade-model"
 FORMAT_VERSION = 1
 META_FILE = "model.json"

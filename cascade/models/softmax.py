@@ -15,6 +15,8 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.optimize import minimize
 
+__all__ = ["fit_softmax"]
+
 
 def fit_softmax(
     X: sp.csr_matrix,

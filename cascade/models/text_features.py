@@ -17,6 +17,18 @@ from typing import Protocol
 
 import numpy as np
 
+__all__ = [
+    "FIELDS",
+    "FIELD_INDEX",
+    "PageLike",
+    "TextSettings",
+    "WordHasher",
+    "field_names",
+    "field_words",
+    "page_word_count",
+    "words",
+]
+
 FIELDS = ("title", "desc", "head", "body", "anchor", "link", "chars")
 FIELD_INDEX = {name: i for i, name in enumerate(FIELDS)}
 _WORD = re.compile(r"[^\W_]+", re.UNICODE)

@@ -15,6 +15,8 @@ import random
 
 from cascade.scenario.telemetry import CATEGORY_WORDS
 
+__all__ = ["MIXED_SHARE", "OFF_TOPIC_SHARE", "THIN_SHARE", "render_page"]
+
 _FILLER = (
     "the", "a", "of", "and", "to", "in", "for", "with", "on", "at", "from", "by", "about",
     "our", "your", "this", "that", "is", "are", "was", "be", "more", "new", "all", "now",
