@@ -26,10 +26,40 @@ test: $(VENV)/.installed
 	$(BIN)/ruff check cascade tests benchmarks
 	$(BIN)/python -m pytest
 
+# Every benchmark in benchmarks/, each writing out/NAME.json. The shared data sets live in
+# $(DATA) (../shared/data unless CASCADE_SHARED_DATA says otherwise); a benchmark, or a data
+# set of one, whose data is not there is skipped with a message. Order: the quick ones
+# first; page_model before budget (it saves the per-split arrays budget reads); the
+# hyper-parameter sweep, the slowest and only for docs/url-model-sweep.md, last.
+DATA       ?= $(if $(CASCADE_SHARED_DATA),$(CASCADE_SHARED_DATA),../shared/data)
+BENCH       = CASCADE_SHARED_DATA=$(abspath $(DATA)) $(BIN)/python
+URL_DATA    = open-directory-hosts domain-categories
+
 bench: $(VENV)/.installed-bench
 	mkdir -p out
-	$(BIN)/python benchmarks/url_model.py --json out/url_model.json
-	$(BIN)/python benchmarks/fetch.py --json out/fetch.json
+	$(BENCH) benchmarks/fetch.py --json out/fetch.json
+	@sets=""; for d in $(URL_DATA); do \
+	  if [ -d "$(DATA)/$$d" ]; then sets="$$sets$$d,"; \
+	  else echo "url_model: skipping $$d ($(DATA)/$$d not found)"; fi; \
+	done; \
+	set -x; $(BENCH) benchmarks/url_model.py --datasets "$${sets}demo-scenario" \
+	  --json out/url_model.json
+	$(BENCH) benchmarks/extract.py --json out/extract.json
+	rm -f out/arrays/*.npz
+	$(BENCH) benchmarks/page_model.py --arrays out/arrays --json out/page_model.json
+	@if ls out/arrays/*.npz >/dev/null 2>&1; then \
+	  set -x; $(BENCH) benchmarks/budget.py --arrays out/arrays --json out/budget.json; \
+	else echo "budget: skipped (page_model saved no arrays under out/arrays)"; fi
+	$(BENCH) benchmarks/report_screenshot.py --png out/report_screenshot.png \
+	  --json out/report_screenshot.json
+	@sets=""; for d in $(URL_DATA); do \
+	  if [ -d "$(DATA)/$$d" ]; then sets="$$sets$$d,"; \
+	  else echo "sweep_url_model: skipping $$d ($(DATA)/$$d not found)"; fi; \
+	done; \
+	if [ -n "$$sets" ]; then \
+	  set -x; $(BENCH) benchmarks/sweep_url_model.py --datasets "$${sets%,}" \
+	    --json out/sweep_url_model.json; \
+	else echo "sweep_url_model: skipped (no URL data under $(DATA))"; fi
 
 clean:
 	rm -rf $(VENV) demo-output out .pytest_cache .ruff_cache .hypothesis

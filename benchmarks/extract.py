@@ -204,6 +204,17 @@ def role_run(name: str, repeats: int, sample: int, seed: int) -> dict:
     return result
 
 
+def trafilatura_import_error() -> str | None:
+    """Why the peer cannot be imported here, or None. Tried for real (not only looked up):
+    an installed trafilatura still fails to import under lxml >= 5.2 without the separate
+    ``lxml_html_clean`` package, and the child runs would then die mid-benchmark."""
+    try:
+        import trafilatura  # noqa: F401
+    except ImportError as exc:  # not installed, or a missing dependency of it
+        return f"{type(exc).__name__}: {exc}".splitlines()[0]
+    return None
+
+
 def _child(*args: str) -> dict:
     return run_child(__file__, *args, timeout=3600)
 
@@ -219,21 +230,26 @@ def main() -> None:
     parser.add_argument("--role", choices=EXTRACTORS, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if not (ARTICLES / "ground-truth.json").exists():
-        print(json.dumps({"benchmark": "extract", "skipped":
-                          f"{ARTICLES} not found: set CASCADE_SHARED_DATA"}))
+        skip = {"benchmark": "extract",
+                "skipped": f"{ARTICLES} not found: set CASCADE_SHARED_DATA"}
+        if args.role:
+            print(json.dumps(skip))  # a child answers on one line
+        else:
+            write_json(skip, args.json)
         return
     if args.role:
         print(json.dumps(role_run(args.role, args.repeats, args.university_sample,
                                   args.seed)))
         return
     names = args.only or list(EXTRACTORS)
-    import importlib.util
-
-    missing = [n for n in names if n.startswith("trafilatura")
-               and importlib.util.find_spec("trafilatura") is None]
-    if missing:
-        print(f"trafilatura is not installed: skipping {missing}", file=sys.stderr)
-        names = [n for n in names if n not in missing]
+    skipped: dict[str, str] = {}
+    if any(n.startswith("trafilatura") for n in names):
+        problem = trafilatura_import_error()
+        if problem is not None:
+            skipped = {n: problem for n in names if n.startswith("trafilatura")}
+            print(f"trafilatura cannot be imported ({problem}): skipping {sorted(skipped)}",
+                  file=sys.stderr)
+            names = [n for n in names if n not in skipped]
     runs = {}
     for name in names:
         runs[name] = _child("--role", name, "--repeats", str(args.repeats),
@@ -270,6 +286,7 @@ def main() -> None:
                    "split": "sha256(id)[0] < '8' is dev, the rest held back",
                    "headline_metric": "f1_page_mean: mean over pages of token-multiset F1"},
         "headline": headline, "runs": runs, "ratios": ratios, "targets": targets,
+        "skipped_extractors": skipped,
     }
     write_json(result, args.json)
 

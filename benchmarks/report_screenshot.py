@@ -1,6 +1,6 @@
 """Screenshot-quality check of the HTML budget report in headless Chromium.
 
-    python benchmarks/report_screenshot.py --png out/report.png
+    python benchmarks/report_screenshot.py --png out/report.png [--json out/report.json]
     python benchmarks/report_screenshot.py --html out/report/report.html --png out/report.png
 
 Opens an instrumented temporary copy of the report (the original is never changed) in
@@ -245,6 +245,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--budget-ms", type=int, default=5000, help="virtual time budget")
     ap.add_argument("--timeout", type=float, default=60, help="seconds per Chromium run")
     ap.add_argument("--require", action="store_true", help="fail when Chromium is missing")
+    ap.add_argument("--json", help="write the verdict here too")
     args = ap.parse_args(argv)
     width, height = (int(v) for v in args.window.lower().split("x"))
     with tempfile.TemporaryDirectory(prefix="cascade-report-") as tmp:
@@ -253,6 +254,8 @@ def main(argv: list[str] | None = None) -> int:
                               window=(width, height), budget_ms=args.budget_ms,
                               timeout=args.timeout)
     print(json.dumps(result))
+    if args.json:
+        Path(args.json).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")
     if "skipped" in result:
         return 2 if args.require else 0
     return 0 if result["ok"] else 1

@@ -3,7 +3,8 @@
 Readers stream (constant memory, whatever the file size) and never stop on a bad line: it is
 counted in ``ReadStats`` with a reason and skipped. Only a file that cannot be read at all
 raises ``InputFormatError``. Writers on a path are atomic: the result appears under its final
-name only once complete. ``Progress`` is a small rate-limited progress line for stderr.
+name only once complete. ``Progress`` reports on stderr: a tqdm bar on a terminal, plain
+lines elsewhere.
 """
 
 from __future__ import annotations
@@ -25,6 +26,8 @@ from collections import deque
 from collections.abc import Callable, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from typing import IO, Any, TextIO, TypeAlias
+
+from tqdm import tqdm
 
 from cascade.errors import InputFormatError
 
@@ -1007,19 +1010,15 @@ def _isatty(stream: Any) -> bool:
         return False
 
 
-def _duration(seconds: float) -> str:
-    seconds = int(round(seconds))
-    hours, rest = divmod(seconds, 3600)
-    minutes, secs = divmod(rest, 60)
-    return f"{hours}:{minutes:02d}:{secs:02d}" if hours else f"{minutes}:{secs:02d}"
-
-
 class Progress:
-    """A progress line on stderr: count, percentage, rate in items/s, time left.
+    """Progress on stderr: a tqdm bar on a terminal, plain periodic lines elsewhere.
 
-    Prints at most once per ``every_s`` seconds, so calling ``update`` per item is cheap.
-    ``enabled`` defaults to whether the stream is a terminal; on a terminal the line is
-    redrawn in place, elsewhere each report is its own line. Never raises on a broken stream.
+    On a terminal the bar (count, percentage when ``total`` is known, rate, time left) comes
+    from tqdm, redrawn at most once per ``every_s`` seconds. Off a terminal, when asked for
+    with ``enabled=True``, each report is its own plain line (``scoring: 12,345 2,100.0/s``)
+    so a log file stays readable; ``clock`` times those lines. ``enabled`` defaults to
+    whether the stream is a terminal; ``enabled=False`` prints nothing. Never raises on a
+    broken stream: progress is a courtesy, not part of the result.
     """
 
     def __init__(
@@ -1047,47 +1046,68 @@ class Progress:
         self._start = clock()
         self._last = self._start
         self._closed = False
+        self._bar: tqdm | None = None
+        if self.enabled and self._tty:
+            try:
+                self._bar = tqdm(
+                    total=total, desc=label, file=self.stream, mininterval=every_s,
+                    dynamic_ncols=True, leave=True,
+                )
+            except (OSError, ValueError):
+                self.enabled = False
 
     def update(self, n: int = 1) -> None:
         """Add ``n`` done items; report if ``every_s`` has passed since the last report."""
         self.count += n
         if not self.enabled or self._closed:
             return
+        if self._bar is not None:
+            self._guarded(self._bar.update, n)
+            return
         now = self._clock()
         if now - self._last >= self.every_s:
             self._last = now
-            self._emit(self._line(now, final=False), final=False)
+            self._guarded(self._write_line, self._line(now, final=False))
 
     def close(self) -> None:
-        """Print the final line (total, elapsed time, mean rate). Safe to call twice."""
+        """Finish: the bar's last state, or a final line (total, elapsed, mean rate). Idempotent."""
         if self._closed:
             return
         self._closed = True
-        if self.enabled:
-            self._emit(self._line(self._clock(), final=True), final=True)
+        if not self.enabled:
+            return
+        if self._bar is not None:
+            self._guarded(self._bar.close)
+        else:
+            self._guarded(self._write_line, self._line(self._clock(), final=True))
 
     def _line(self, now: float, final: bool) -> str:
+        """One plain report line; durations in tqdm's format so both modes read alike."""
         elapsed = max(now - self._start, 0.0)
         rate = self.count / elapsed if elapsed > 0 else 0.0
-        done = f"{self.count:,}"
-        parts = [f"{self.label}: {done}" + (f"/{self.total:,}" if self.total is not None else "")]
+        parts = [f"{self.label}: {self.count:,}"
+                 + (f"/{self.total:,}" if self.total is not None else "")]
         if self.total:
             parts.append(f"{100.0 * self.count / self.total:.1f}%")
         parts.append(f"{rate:,.1f}/s")
         if final:
-            parts.append(f"in {_duration(elapsed)}")
+            parts.append(f"in {tqdm.format_interval(round(elapsed))}")
         elif self.total and rate > 0 and self.count < self.total:
-            parts.append(f"eta {_duration((self.total - self.count) / rate)}")
+            parts.append(f"eta {tqdm.format_interval(round((self.total - self.count) / rate))}")
         return " ".join(parts)
 
-    def _emit(self, text: str, final: bool) -> None:
-        ending = "\n" if final or not self._tty else ""
-        out = (f"\r{text}\x1b[K" if self._tty else text) + ending
+    def _write_line(self, text: str) -> None:
+        self.stream.write(text + "\n")
+        self.stream.flush()
+
+    def _guarded(self, call: Callable[..., object], *args: Any) -> None:
+        """Run one write; on a broken stream go quiet for good instead of raising."""
         try:
-            self.stream.write(out)
-            self.stream.flush()
+            call(*args)
         except (OSError, ValueError):
             self.enabled = False
+            if self._bar is not None:
+                self._bar.disable = True  # so tqdm's own close/__del__ writes nothing more
 
     def __enter__(self) -> Progress:
         return self

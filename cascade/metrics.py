@@ -1,4 +1,10 @@
-"""Evaluation metrics for a calibrated multi-class URL model, in plain numpy.
+"""Evaluation metrics for a calibrated multi-class URL model.
+
+Accuracy, F1, ROC AUC and TPR at an FPR budget are thin wrappers over ``sklearn.metrics``
+(the reference the tests check against), adding this project's input checks and its
+conventions for undefined cases (NaN rather than an exception or a silent 0). The weighted
+top-label ECE, the reliability table, coverage at a precision target and the risk-coverage
+curve have no ``sklearn.metrics`` counterpart and are written here in numpy.
 
 Every metric takes class indices ``y_true`` of shape (n,) and, where it needs scores,
 calibrated probabilities ``proba`` of shape (n, k) whose rows sum to 1. An optional
@@ -18,6 +24,14 @@ from typing import Any
 
 import numpy as np
 import numpy.typing as npt
+from sklearn.metrics import accuracy_score, f1_score, roc_auc_score, roc_curve
+
+from cascade._validation import (
+    check_labels,
+    check_n_classes,
+    check_proba,
+    check_weight,
+)
 
 __all__ = [
     "ReliabilityTable",
@@ -33,82 +47,6 @@ __all__ = [
     "tpr_at_fpr",
 ]
 
-#: How far a row of ``proba`` may sum from 1 (float32 softmax output over a few dozen
-#: classes is off by a few 1e-7; anything past this is a bug upstream, not rounding).
-ROW_SUM_TOL = 1e-5
-
-
-# --------------------------------------------------------------------------- validation
-
-
-def _check_labels(y: npt.ArrayLike, name: str, n_classes: int | None = None) -> np.ndarray:
-    """Return ``y`` as a 1-D int64 array of class indices, or raise ValueError."""
-    arr = np.asarray(y)
-    if arr.ndim != 1:
-        raise ValueError(f"{name} must be 1-D, got shape {arr.shape}")
-    if arr.shape[0] == 0:
-        raise ValueError(f"{name} is empty")
-    if arr.dtype == bool or not np.issubdtype(arr.dtype, np.integer):
-        raise ValueError(f"{name} must hold integer class indices, got dtype {arr.dtype}")
-    arr = arr.astype(np.int64, copy=False)
-    if arr.min() < 0:
-        raise ValueError(f"{name} holds a negative class index ({arr.min()})")
-    if n_classes is not None and arr.max() >= n_classes:
-        raise ValueError(
-            f"{name} holds class index {arr.max()}, outside 0..{n_classes - 1}"
-        )
-    return arr
-
-
-def _check_n_classes(n_classes: int) -> int:
-    if isinstance(n_classes, bool) or not isinstance(n_classes, int | np.integer):
-        raise ValueError(f"n_classes must be an int, got {n_classes!r}")
-    if n_classes < 1:
-        raise ValueError(f"n_classes must be >= 1, got {n_classes}")
-    return int(n_classes)
-
-
-def _check_proba(proba: npt.ArrayLike, n: int) -> np.ndarray:
-    """Return ``proba`` as an (n, k) float64 array of probability rows, or raise ValueError."""
-    arr = np.asarray(proba, dtype=np.float64)
-    if arr.ndim != 2:
-        raise ValueError(f"proba must be 2-D (n, k), got shape {arr.shape}")
-    if arr.shape[0] != n:
-        raise ValueError(f"proba has {arr.shape[0]} rows but y_true has {n}")
-    if arr.shape[1] < 1:
-        raise ValueError("proba has no columns")
-    if not np.all(np.isfinite(arr)):
-        raise ValueError("proba holds NaN or infinite values")
-    if arr.min() < -ROW_SUM_TOL or arr.max() > 1 + ROW_SUM_TOL:
-        raise ValueError("proba holds values outside [0, 1]")
-    sums = arr.sum(axis=1)
-    bad = np.flatnonzero(np.abs(sums - 1.0) > ROW_SUM_TOL)
-    if bad.size:
-        i = int(bad[0])
-        raise ValueError(
-            f"proba rows must sum to 1 (within {ROW_SUM_TOL}); {bad.size} do not, "
-            f"e.g. row {i} sums to {sums[i]!r}"
-        )
-    return arr
-
-
-def _check_weight(sample_weight: npt.ArrayLike | None, n: int) -> np.ndarray:
-    """Return the weights as float64 (all ones when None), or raise ValueError."""
-    if sample_weight is None:
-        return np.ones(n, dtype=np.float64)
-    w = np.asarray(sample_weight, dtype=np.float64)
-    if w.ndim != 1:
-        raise ValueError(f"sample_weight must be 1-D, got shape {w.shape}")
-    if w.shape[0] != n:
-        raise ValueError(f"sample_weight has {w.shape[0]} entries but y_true has {n}")
-    if not np.all(np.isfinite(w)):
-        raise ValueError("sample_weight holds NaN or infinite values")
-    if w.min() < 0:
-        raise ValueError(f"sample_weight holds a negative weight ({w.min()})")
-    if w.sum() <= 0:
-        raise ValueError("sample_weight sums to zero: nothing to evaluate")
-    return w
-
 
 def _keep_weighted(w: np.ndarray, *arrays: np.ndarray) -> tuple[np.ndarray, ...]:
     """Drop rows of weight 0 so they behave exactly like absent rows."""
@@ -122,13 +60,13 @@ def _prepare_proba(
     y_true: npt.ArrayLike, proba: npt.ArrayLike, sample_weight: npt.ArrayLike | None
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Validate (y_true, proba, sample_weight) and return (y, p, w) with zero-weight rows gone."""
-    y = _check_labels(y_true, "y_true")
-    p = _check_proba(proba, y.shape[0])
+    y = check_labels(y_true, "y_true")
+    p = check_proba(proba, y.shape[0])
     if y.max() >= p.shape[1]:
         raise ValueError(
             f"y_true holds class index {y.max()} but proba has only {p.shape[1]} columns"
         )
-    w = _check_weight(sample_weight, y.shape[0])
+    w = check_weight(sample_weight, y.shape[0])
     w, y, p = _keep_weighted(w, y, p)
     return y, p, w
 
@@ -140,11 +78,11 @@ def _prepare_pred(
     sample_weight: npt.ArrayLike | None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Validate (y_true, y_pred, sample_weight) and return (y, yp, w) with zero-weight rows gone."""
-    y = _check_labels(y_true, "y_true", n_classes)
-    yp = _check_labels(y_pred, "y_pred", n_classes)
+    y = check_labels(y_true, "y_true", n_classes)
+    yp = check_labels(y_pred, "y_pred", n_classes)
     if yp.shape[0] != y.shape[0]:
         raise ValueError(f"y_pred has {yp.shape[0]} entries but y_true has {y.shape[0]}")
-    w = _check_weight(sample_weight, y.shape[0])
+    w = check_weight(sample_weight, y.shape[0])
     w, y, yp = _keep_weighted(w, y, yp)
     return y, yp, w
 
@@ -163,7 +101,15 @@ def accuracy(
 ) -> float:
     """Fraction (or weight fraction) of rows whose predicted class is the true one."""
     y, yp, w = _prepare_pred(y_true, y_pred, None, sample_weight)
-    return float(np.sum(w * (y == yp)) / np.sum(w))
+    return float(accuracy_score(y, yp, sample_weight=w))
+
+
+def _present_classes(y: np.ndarray, yp: np.ndarray, k: int) -> np.ndarray:
+    """Whether each of the k classes occurs in y or yp (zero-weight rows already gone)."""
+    present = np.zeros(k, dtype=bool)
+    present[y] = True
+    present[yp] = True
+    return present
 
 
 def f1_per_class(
@@ -174,22 +120,18 @@ def f1_per_class(
 ) -> np.ndarray:
     """Per-class F1 (k,); NaN for a class that appears in neither y_true nor y_pred.
 
-    A class that appears is scored 2TP / (2TP + FP + FN), which is 0 when it is never
-    predicted right, so the undefined case is kept apart from the merely bad one.
+    A class that appears is scored 2TP / (2TP + FP + FN) by ``sklearn.metrics.f1_score``,
+    which is 0 when it is never predicted right, so the undefined case is kept apart from
+    the merely bad one (sklearn would score both 0).
     """
-    k = _check_n_classes(n_classes)
+    k = check_n_classes(n_classes)
     y, yp, w = _prepare_pred(y_true, y_pred, k, sample_weight)
-    confusion = np.bincount(y * k + yp, weights=w, minlength=k * k).reshape(k, k)
-    tp = np.diag(confusion)
-    fp = confusion.sum(axis=0) - tp
-    fn = confusion.sum(axis=1) - tp
-    denom = 2 * tp + fp + fn
-    present = np.zeros(k, dtype=bool)
-    present[y] = True
-    present[yp] = True
-    out = np.full(k, np.nan)
-    # A present class has positive weight somewhere in its row or column, so denom > 0.
-    out[present] = 2 * tp[present] / denom[present]
+    # zero_division only reaches absent classes (a present one has positive weight in its
+    # row or column of the confusion matrix), and those become NaN below.
+    out = f1_score(
+        y, yp, labels=np.arange(k), average=None, sample_weight=w, zero_division=0.0
+    ).astype(np.float64)
+    out[~_present_classes(y, yp, k)] = np.nan
     return out
 
 
@@ -204,21 +146,20 @@ def macro_f1(
     Classes absent from both are left out rather than scored 0, so the figure does not
     move when the taxonomy grows a category the test set never touches.
     """
-    return float(np.nanmean(f1_per_class(y_true, y_pred, n_classes, sample_weight)))
+    k = check_n_classes(n_classes)
+    y, yp, w = _prepare_pred(y_true, y_pred, k, sample_weight)
+    labels = np.flatnonzero(_present_classes(y, yp, k))
+    return float(
+        f1_score(y, yp, labels=labels, average="macro", sample_weight=w, zero_division=0.0)
+    )
 
 
 # ------------------------------------------------------------------- ranking metrics
 
 
-def _score_groups(
-    positive: np.ndarray, score: np.ndarray, w: np.ndarray
-) -> tuple[np.ndarray, np.ndarray]:
-    """Positive and negative weight per distinct score value, in ascending score order."""
-    _, inverse = np.unique(score, return_inverse=True)
-    n_groups = int(inverse.max()) + 1
-    wp = np.bincount(inverse, weights=w * positive, minlength=n_groups)
-    wn = np.bincount(inverse, weights=w * ~positive, minlength=n_groups)
-    return wp, wn
+def _one_vs_rest_defined(positive: np.ndarray, w: np.ndarray) -> bool:
+    """Class has positive weight on both sides, so its ROC curve exists (else sklearn raises)."""
+    return bool(w[positive].sum() > 0 and w[~positive].sum() > 0)
 
 
 def roc_auc_one_vs_rest(
@@ -226,20 +167,17 @@ def roc_auc_one_vs_rest(
 ) -> np.ndarray:
     """Per-class ROC AUC (k,), class c against the rest scored by ``proba[:, c]``.
 
-    Computed as the (weighted) chance that a random positive outscores a random
-    negative, ties counting one half; this equals the trapezoid area under the ROC curve.
-    NaN for a class with no positives or no negatives.
+    Each column is ``sklearn.metrics.roc_auc_score`` on ``y_true == c`` (trapezoid area,
+    ties counting one half). NaN for a class with no positives or no negatives, where
+    sklearn raises: one undefined class must not sink the other figures.
     """
     y, p, w = _prepare_proba(y_true, proba, sample_weight)
     k = p.shape[1]
     out = np.full(k, np.nan)
     for c in range(k):
-        wp, wn = _score_groups(y == c, p[:, c], w)
-        total_p, total_n = wp.sum(), wn.sum()
-        if total_p <= 0 or total_n <= 0:
-            continue
-        neg_below = np.cumsum(wn) - wn
-        out[c] = np.sum(wp * (neg_below + 0.5 * wn)) / (total_p * total_n)
+        positive = y == c
+        if _one_vs_rest_defined(positive, w):
+            out[c] = roc_auc_score(positive, p[:, c], sample_weight=w)
     return out
 
 
@@ -253,9 +191,10 @@ def tpr_at_fpr(
 
     Definition: for class c, each threshold t flags the rows with ``proba[:, c] >= t``;
     over all thresholds (the distinct scores, plus one above them all that flags nothing)
-    whose FPR is <= ``max_fpr``, return the highest TPR. This reads the ROC step
-    function with no interpolation between its points, so the answer is always reachable
-    by a real threshold. NaN for a class with no positives or no negatives.
+    whose FPR is <= ``max_fpr``, return the highest TPR. These are the points of
+    ``sklearn.metrics.roc_curve(drop_intermediate=False)``; the step function is read with
+    no interpolation between points, so the answer is always reachable by a real threshold.
+    NaN for a class with no positives or no negatives.
     """
     max_fpr = float(max_fpr)
     if not 0.0 <= max_fpr <= 1.0:
@@ -264,18 +203,13 @@ def tpr_at_fpr(
     k = p.shape[1]
     out = np.full(k, np.nan)
     for c in range(k):
-        wp, wn = _score_groups(y == c, p[:, c], w)
-        # Descending thresholds: cumulative weight flagged at each distinct score.
-        tp = np.cumsum(wp[::-1])
-        fp = np.cumsum(wn[::-1])
-        total_p, total_n = tp[-1], fp[-1]
-        if total_p <= 0 or total_n <= 0:
+        positive = y == c
+        if not _one_vs_rest_defined(positive, w):
             continue
-        fpr = fp / total_n
-        tpr = tp / total_p
-        ok = fpr <= max_fpr
-        # The flag-nothing threshold (FPR 0, TPR 0) is always allowed.
-        out[c] = float(tpr[ok].max()) if ok.any() else 0.0
+        # Every point is kept: dropping collinear ones could lose the best allowed point.
+        fpr, tpr, _ = roc_curve(positive, p[:, c], sample_weight=w, drop_intermediate=False)
+        # The curve starts at the flag-nothing point (0, 0), so some point always fits.
+        out[c] = float(tpr[fpr <= max_fpr].max())
     return out
 
 
@@ -482,8 +416,8 @@ def summarize(
     Top-level figures count every URL once; with ``sample_weight`` a ``"weighted"``
     sub-dict repeats the headline figures weighted by lookup count.
     """
-    y = _check_labels(y_true, "y_true")
-    p = _check_proba(proba, y.shape[0])
+    y = check_labels(y_true, "y_true")
+    p = check_proba(proba, y.shape[0])
     k = p.shape[1]
     names = [str(name) for name in class_names]
     if len(names) != k:
@@ -495,7 +429,7 @@ def summarize(
     precision_target = float(precision_target)
     if not 0.0 <= precision_target <= 1.0:
         raise ValueError(f"precision_target must lie in [0, 1], got {precision_target}")
-    w = None if sample_weight is None else _check_weight(sample_weight, y.shape[0])
+    w = None if sample_weight is None else check_weight(sample_weight, y.shape[0])
 
     figures, aucs = _headline(y, p, None, precision_target)
     pred = p.argmax(axis=1)

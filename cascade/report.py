@@ -284,27 +284,36 @@ _COLOURS = {"planner": "#1b6b5a", "lowest-confidence": "#c2711b", "random": "#7a
             "fetch all": "#3b4cc0"}
 
 
+#: The report's plot style, applied only while its own figures are built and saved.
+_STYLE = {"font.size": 9, "axes.spines.top": False, "axes.spines.right": False}
+
+
 def _figures(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
-    """(id, caption, base64 PNG) per plot."""
+    """(id, caption, base64 PNG) per plot.
+
+    Draws on its own ``Figure`` objects (no pyplot, no backend switch) with the style in
+    an ``rc_context``, so a program that builds a report keeps its matplotlib settings."""
     import matplotlib
 
-    matplotlib.use("Agg", force=True)
-    from matplotlib import pyplot as plt
+    with matplotlib.rc_context(_STYLE):
+        return _draw(rep)
 
-    plt.rcParams.update({"font.size": 9, "axes.spines.top": False,
-                         "axes.spines.right": False})
+
+def _draw(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
+    from matplotlib.figure import Figure
+
     figs: list[tuple[str, str, str]] = []
 
-    def keep(fig: Any, fid: str, caption: str) -> None:
+    def keep(fig: Figure, fid: str, caption: str) -> None:
         buf = io.BytesIO()
         fig.savefig(buf, format="png", dpi=110, bbox_inches="tight")
-        plt.close(fig)
         figs.append((fid, caption, base64.b64encode(buf.getvalue()).decode("ascii")))
 
     x = np.array(rep["curves"]["budget"]) * 100
     for metric, label, fid in (("accuracy", "accuracy", "budget-accuracy"),
                                ("cost_weighted_error", "cost-weighted error", "budget-error")):
-        fig, ax = plt.subplots(figsize=(6.2, 3.6))
+        fig = Figure(figsize=(6.2, 3.6))
+        ax = fig.subplots()
         for name in STRATEGIES:
             cur = rep["curves"][name]
             ax.plot(x, cur[metric], label=name, color=_COLOURS[name],
@@ -318,7 +327,8 @@ def _figures(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
         ax.grid(alpha=0.3)
         ax.legend(frameon=False, fontsize=8)
         keep(fig, fid, f"{label.capitalize()} against fetch budget, four strategies.")
-    fig, ax = plt.subplots(figsize=(6.2, 3.6))
+    fig = Figure(figsize=(6.2, 3.6))
+    ax = fig.subplots()
     for name, cur in rep["risk_coverage"].items():
         ax.plot(cur["coverage"], cur["risk"], label=name,
                 color=_COLOURS.get(name.split(" at ")[0], "#1b6b5a"))
@@ -330,8 +340,8 @@ def _figures(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
     classes = [c for c in rep["classes"] if c in rep["roc"].get("cascade", {})]
     cols = 4
     rows = max(1, math.ceil(len(classes) / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(8.8, 2.3 * rows + 0.8), squeeze=False,
-                             sharex=True, sharey=True, layout="constrained")
+    fig = Figure(figsize=(8.8, 2.3 * rows + 0.8), layout="constrained")
+    axes = fig.subplots(rows, cols, squeeze=False, sharex=True, sharey=True)
     for ax in axes.flat[len(classes):]:
         ax.axis("off")
     for ax, cls in zip(axes.flat, classes, strict=False):
@@ -352,7 +362,8 @@ def _figures(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
     handles, labels = axes.flat[0].get_legend_handles_labels()
     fig.legend(handles, labels, loc="outside upper center", ncols=2, frameon=False, fontsize=8)
     keep(fig, "roc", f"Per-category ROC (one vs rest, log FPR); dotted line at FPR {ROC_FPR:g}.")
-    fig, ax = plt.subplots(figsize=(4.4, 4.0))
+    fig = Figure(figsize=(4.4, 4.0))
+    ax = fig.subplots()
     ax.plot([0, 1], [0, 1], color="#999999", lw=0.8, ls=":")
     for name, rows_ in rep["reliability"].items():
         pts = [(r["mean_confidence"], r["accuracy"]) for r in rows_ if r["accuracy"] is not None]

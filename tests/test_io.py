@@ -460,11 +460,28 @@ def test_progress_rate_limited_and_final_line() -> None:
     assert (
         lines[0].startswith("scoring: 200/1,000 20.0%") and "/s" in lines[0] and "eta" in lines[0]
     )
+    assert "\r" not in out.getvalue() and "\x1b" not in out.getvalue()  # plain lines off a tty
     clock.now += 0.5
     p.close()
     p.close()
     final = out.getvalue().splitlines()
-    assert len(final) == 2 and final[1] == "scoring: 300/1,000 30.0% 150.0/s in 0:02"
+    assert len(final) == 2 and final[1] == "scoring: 300/1,000 30.0% 150.0/s in 00:02"
+
+
+def test_progress_plain_lines_repeat_without_a_total() -> None:
+    out, clock = io.StringIO(), _Clock()
+    p = Progress(label="reading", every_s=5.0, stream=out, enabled=True, clock=clock)
+    for _ in range(3):
+        clock.now += 5.0
+        p.update(1000)
+    p.close()
+    lines = out.getvalue().splitlines()
+    assert lines == [
+        "reading: 1,000 200.0/s",
+        "reading: 2,000 200.0/s",
+        "reading: 3,000 200.0/s",
+        "reading: 3,000 200.0/s in 00:15",
+    ]
 
 
 def test_progress_disabled_off_a_terminal() -> None:
@@ -475,12 +492,43 @@ def test_progress_disabled_off_a_terminal() -> None:
     assert out.getvalue() == "" and p.count == 5
 
 
+class _Terminal(io.StringIO):
+    def isatty(self) -> bool:
+        return True
+
+
+def test_progress_on_a_terminal_draws_a_bar_and_ends_the_line() -> None:
+    out = _Terminal()
+    with Progress(total=1000, label="scoring", stream=out) as p:  # a tty: enabled by default
+        for _ in range(3):
+            p.update(100)
+    text = out.getvalue()
+    assert text.startswith("\r") and text.endswith("\n")  # redrawn in place, left at the end
+    final = text.rstrip("\n").rsplit("\r", 1)[-1]
+    assert final.startswith("scoring:") and "300/1000" in final and "30%" in final
+
+
+def test_progress_quiet_on_a_terminal_prints_nothing() -> None:
+    out = _Terminal()
+    with Progress(total=10, stream=out, enabled=False) as p:
+        p.update(10)
+    assert out.getvalue() == "" and p.count == 10
+
+
 def test_progress_survives_a_closed_stream() -> None:
     out = io.StringIO()
     out.close()
     p = Progress(stream=out, enabled=True, every_s=0.0)
     p.update()
     p.close()
+
+
+def test_progress_survives_a_terminal_closed_midway() -> None:
+    out = _Terminal()
+    p = Progress(total=5, stream=out, every_s=0.0)
+    out.close()
+    p.update()
+    p.close()  # nothing raised: progress never breaks the job it reports on
 
 
 # --------------------------------------------------------------------------- properties

@@ -170,3 +170,23 @@ def test_dollar_signs_in_category_names_render(data, tmp_path) -> None:
     paths = write_report(build_report(y, pu, pf, gain, names, seeds=1), tmp_path / "d")
     page = paths["html"].read_text()
     assert "&lt;b&gt;&amp;" in page and "<b>&" not in page
+
+
+def test_writing_a_report_leaves_matplotlib_global_state_alone(data, tmp_path) -> None:
+    import matplotlib
+
+    y, pu, pf, gain = data
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], seeds=1)
+    original = matplotlib.get_backend()
+    try:
+        # A caller with its own settings: a non-Agg backend and a style the report does not use.
+        matplotlib.use("svg", force=True)
+        with matplotlib.rc_context({"font.size": 13.0, "axes.spines.top": True}):
+            before = dict(matplotlib.rcParams.copy())
+            write_report(rep, tmp_path / "r")
+            assert matplotlib.get_backend() == "svg"
+            after = dict(matplotlib.rcParams.copy())
+            assert after.keys() == before.keys()
+            assert [key for key in before if after[key] != before[key]] == []
+    finally:
+        matplotlib.use(original, force=True)
