@@ -50,7 +50,7 @@ def check_proba(proba: npt.ArrayLike, n: int | None = None, name: str = "proba",
     if arr.ndim != 2:
         raise ValueError(f"{name} must be 2-D (n, k), got shape {arr.shape}")
     if n is not None and arr.shape[0] != n:
-        raise ValueError(f"{name} has {arr.shape[0]} rows but y_true has {n}")
+        raise ValueError(f"{name} has {arr.shape[0]} rows but {n} were expected")
     if arr.shape[1] < 1:
         raise ValueError(f"{name} has no columns")
     if n_classes is not None and arr.shape[1] != n_classes:
