@@ -44,6 +44,7 @@ _LAZY = {
     "Fetcher": "cascade.fetch",
     "SyncFetcher": "cascade.fetch",
     "FetchPolicy": "cascade.fetch",
+    "RetryPolicy": "cascade.fetch",
     "FetchResult": "cascade.fetch",
     "FetchOutcome": "cascade.fetch",
     "StaticResolver": "cascade.fetch",

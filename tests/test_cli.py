@@ -113,9 +113,9 @@ def test_real_process_reads_stdin_and_reports_exit_code(workdir: Path) -> None:
 
 
 def test_fetch_command_prints_results_and_refuses_private_targets(capsys) -> None:
-    from cascade.scenario.site_farm import SiteFarm
+    from hostile_cases import HostileSiteFarm
 
-    with SiteFarm() as farm:
+    with HostileSiteFarm() as farm:
         code = main(["--quiet", "fetch", "--resolve", "site.test:127.0.0.1",
                      "--resolve", "inside.test:10.1.2.3", "--allow-network", "127.0.0.1/32",
                      "--port", str(farm.port), "--deadline", "3",

@@ -15,12 +15,17 @@ import ssl
 import threading
 import time
 
+import h11
+import httpcore
+import httpx
 import pytest
+from hostile_cases import CountingListener, HostileSiteFarm
 
-from cascade.fetch import Fetcher, FetchOutcome, FetchPolicy, SyncFetcher
+from cascade.fetch import Fetcher, FetchOutcome, FetchPolicy, RetryPolicy, SyncFetcher
+from cascade.fetch.fetcher import _head_too_large, _tls_failure
 from cascade.fetch.resolver import StaticResolver
+from cascade.fetch.transport import PinnedBackend, PinnedTransport
 from cascade.scenario import generate_telemetry
-from cascade.scenario.site_farm import CountingListener, SiteFarm
 
 DEADLINE = 3.0
 
@@ -37,7 +42,7 @@ def _ipv6_loopback() -> bool:
 @pytest.fixture(scope="module")
 def farm():
     records = generate_telemetry(seed=5, n_sites=40)
-    with SiteFarm(records) as f:
+    with HostileSiteFarm(records) as f:
         f.records = records
         yield f
 
@@ -59,7 +64,8 @@ def witnesses(farm):
 @pytest.fixture()
 def policy(farm) -> FetchPolicy:
     return FetchPolicy(ports=(farm.port,), allow_networks=("127.0.0.1/32",),
-                       deadline_s=DEADLINE, per_host_delay_s=0.0, retries=1,
+                       deadline_s=DEADLINE, per_host_delay_s=0.0,
+                       retry=RetryPolicy(retries=1),
                        max_bytes=1 << 20, max_decoded_bytes=2 << 20)
 
 
@@ -416,6 +422,67 @@ def test_tls_with_an_untrusted_certificate_fails_and_trusted_one_works(farm) -> 
         stop.set()
         thread.join(2)
         listener.close()
+
+
+def _chain(*errors: BaseException) -> BaseException:
+    """Link ``errors`` as ``raise errors[i + 1] from errors[i]`` would (httpcore and httpx
+    raise that way); return the outermost."""
+    for inner, outer in zip(errors, errors[1:], strict=False):
+        outer.__cause__ = inner
+    return errors[-1]
+
+
+def test_tls_failure_is_recognised_by_type_not_by_message() -> None:
+    # httpx.ConnectError <- httpcore.ConnectError <- ssl.SSLCertVerificationError, the
+    # chain httpcore's AnyIOBackend.start_tls and httpx's transport build (httpcore 1.0)
+    cert = ssl.SSLCertVerificationError(1, "")
+    found = _tls_failure(_chain(cert, httpcore.ConnectError(""), httpx.ConnectError("")))
+    assert found is cert
+    plain = ssl.SSLError(1, "[X] handshake went wrong")
+    assert _tls_failure(_chain(plain, httpx.ConnectError("no clue in here"))) is plain
+    # a message that merely says "SSL certificate" is not a TLS failure
+    refused = _chain(ConnectionRefusedError("SSL certificate"),
+                     httpcore.ConnectError("SSL certificate"),
+                     httpx.ConnectError("SSL certificate"))
+    assert _tls_failure(refused) is None
+    # the peer hanging up mid-handshake is a broken connection, retried like a reset
+    eof = _chain(ssl.SSLEOFError(8, "EOF"), httpcore.ConnectError(""), httpx.ConnectError(""))
+    assert _tls_failure(eof) is None
+
+
+def test_oversized_response_head_is_recognised_by_h11s_status_hint() -> None:
+    # h11 raises RemoteProtocolError("Receive buffer too long", error_status_hint=431)
+    # when a response head outgrows its buffer; 431 is RFC 6585 section 5
+    big = h11.RemoteProtocolError("Receive buffer too long", error_status_hint=431)
+    assert _head_too_large(_chain(big, httpcore.RemoteProtocolError(str(big)),
+                                  httpx.RemoteProtocolError(str(big))))
+    other = h11.RemoteProtocolError("buffer too long", error_status_hint=400)
+    assert not _head_too_large(_chain(other, httpx.RemoteProtocolError(str(other))))
+    assert not _head_too_large(httpx.RemoteProtocolError("exceeded maximum size"))
+
+
+def test_backend_refuses_a_connect_without_a_pin() -> None:
+    # refused before any socket is opened, so nothing is reached
+    backend = PinnedBackend()
+    with pytest.raises(httpcore.ConnectError, match="no checked address"):
+        asyncio.run(backend.connect_tcp("site.test", 80))
+    assert backend.connects == []
+
+
+def test_transport_raises_public_httpx_errors_with_the_httpcore_cause() -> None:
+    async def run() -> BaseException:
+        transport = PinnedTransport(httpx.Limits(max_connections=1))
+        try:
+            await transport.handle_async_request(httpx.Request("GET", "http://site.test/"))
+        except httpx.ConnectError as exc:  # no pin: refused by the backend
+            return exc
+        finally:
+            await transport.aclose()
+        raise AssertionError("the unpinned request was sent")
+
+    error = asyncio.run(run())
+    assert isinstance(error.__cause__, httpcore.ConnectError)
+    assert "no checked address" in str(error)
 
 
 # ---------------------------------------------------------------- many, and the sync twin

@@ -12,6 +12,7 @@ from cascade.fetch.resolver import (
     SystemResolver,
     parse_resolve_overrides,
 )
+from cascade.fetch.retry import RetryPolicy
 
 __all__ = [
     "AddressDecision",
@@ -23,6 +24,7 @@ __all__ = [
     "Hop",
     "ResolutionError",
     "Resolver",
+    "RetryPolicy",
     "StaticResolver",
     "SyncFetcher",
     "SystemResolver",

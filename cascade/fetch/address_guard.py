@@ -21,6 +21,8 @@ from dataclasses import dataclass
 from functools import lru_cache
 from importlib import resources
 
+__all__ = ["AddressDecision", "AddressGuard", "Block", "special_blocks"]
+
 IPAddress = ipaddress.IPv4Address | ipaddress.IPv6Address
 IPNetwork = ipaddress.IPv4Network | ipaddress.IPv6Network
 

@@ -8,6 +8,8 @@ from __future__ import annotations
 import zlib
 from collections.abc import AsyncIterator
 
+__all__ = ["BadEncoding", "BodyTooLarge", "parse_encodings", "read_capped"]
+
 
 class BodyTooLarge(Exception):  # noqa: N818 - internal signal, mapped to an outcome
     def __init__(self, what: str) -> None:

@@ -9,6 +9,8 @@ from __future__ import annotations
 import codecs
 import re
 
+__all__ = ["charset_from_content_type", "codec_for", "decode_text", "sniff_encoding"]
+
 # WHATWG Encoding Standard: labels whose Python codec would differ from the standard's.
 _WHATWG_ALIASES = {
     "iso-8859-1": "cp1252", "latin1": "cp1252", "l1": "cp1252", "ascii": "cp1252",

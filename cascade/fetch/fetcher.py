@@ -11,16 +11,18 @@ read). The whole fetch, DNS to last byte, runs under one deadline.
 from __future__ import annotations
 
 import asyncio
-import email.utils
+import ssl
 import time
-from collections.abc import AsyncIterator, Iterable
+from collections.abc import AsyncIterator, Iterable, Iterator
 from dataclasses import dataclass
 from urllib.parse import urljoin
 
+import h11
 import httpcore
 import httpx
 from tenacity import (
     AsyncRetrying,
+    RetryCallState,
     RetryError,
     retry_if_exception_type,
     stop_after_attempt,
@@ -37,8 +39,11 @@ from cascade.fetch.robots import RobotsCache
 from cascade.fetch.transport import PinnedTransport, pinned, unpin
 from cascade.urls import DEFAULT_PORTS, UrlKey, normalize
 
+__all__ = ["Fetcher", "REDIRECT_STATUSES", "SyncFetcher"]
+
+__all__ = ["REDIRECT_STATUSES", "Fetcher", "SyncFetcher"]
+
 REDIRECT_STATUSES = (301, 302, 303, 307, 308)
-TRANSIENT_STATUSES = (429, 502, 503, 504)
 
 
 class _Stop(Exception):  # noqa: N818 - internal: ends a fetch with an outcome
@@ -208,12 +213,13 @@ class Fetcher:
                 response = await self.transport.handle_async_request(request)
             except httpx.ConnectError as exc:
                 text = str(exc)
-                if "CERTIFICATE" in text.upper() or "SSL" in text.upper():
-                    raise _Stop(FetchOutcome.TLS_ERROR, text[:300]) from None
+                tls = _tls_failure(exc)
+                if tls is not None:
+                    raise _Stop(FetchOutcome.TLS_ERROR, (text or str(tls))[:300]) from None
                 raise _Transient(f"connect: {text[:300]}") from None
             except (httpx.ReadError, httpx.WriteError, httpx.RemoteProtocolError) as exc:
                 text = str(exc)
-                if "buffer too long" in text or "exceeded maximum size" in text:
+                if _head_too_large(exc):
                     raise _Stop(FetchOutcome.TOO_LARGE, "response headers too large") from None
                 if isinstance(exc, httpx.RemoteProtocolError):
                     raise _Stop(FetchOutcome.BAD_RESPONSE, f"not HTTP: {text[:200]}") from None
@@ -230,12 +236,13 @@ class Fetcher:
                     raise _Stop(FetchOutcome.TOO_LARGE,
                                 f"response headers are {header_bytes} bytes", response.status_code)
                 status = response.status_code
-                if status in TRANSIENT_STATUSES:
-                    wait = _retry_after(response.headers.get("retry-after"))
-                    if wait is not None and wait > self.policy.max_retry_after_s:
+                retry = self.policy.retry
+                if retry.is_transient(status):
+                    wait = retry.parse_retry_after(response.headers.get("retry-after"))
+                    if retry.gives_up_on(wait):
                         raise _Stop(FetchOutcome.HTTP_ERROR,
                                     f"status {status}, Retry-After {wait:.0f} s is over the "
-                                    f"limit of {self.policy.max_retry_after_s} s", status)
+                                    f"limit of {retry.max_retry_after_s} s", status)
                     raise _Transient(f"status {status}", wait or 0.0, status)
                 if status in REDIRECT_STATUSES or status >= 400:
                     return response, None
@@ -269,13 +276,22 @@ class Fetcher:
 
     async def _get(self, key: UrlKey, address: str, max_bytes: int) -> tuple[
             httpx.Response, bytes | None]:
-        """``_send`` with retries for transient failures (tenacity), inside the deadline."""
+        """``_send`` with retries for transient failures (tenacity, driven by the policy's
+        ``RetryPolicy``), inside the deadline."""
+        retry = self.policy.retry
+
+        def wait(state: RetryCallState) -> float:
+            # tenacity asks after try number ``state.attempt_number`` failed
+            failed = state.outcome.exception() if state.outcome else None
+            return retry.wait_before(state.attempt_number + 1,
+                                     getattr(failed, "wait_s", None))
+
         last: _Transient | None = None
         try:
             async for attempt in AsyncRetrying(
-                stop=stop_after_attempt(self.policy.retries + 1),
+                stop=stop_after_attempt(retry.attempts),
                 retry=retry_if_exception_type(_Transient),
-                wait=lambda state: _backoff(state),
+                wait=wait,
                 reraise=False,
             ):
                 with attempt:
@@ -284,7 +300,7 @@ class Fetcher:
             last = exc.last_attempt.exception()  # type: ignore[assignment]
         if last is not None and last.status is not None:
             raise _Stop(FetchOutcome.HTTP_ERROR, f"{last.detail} after "
-                        f"{self.policy.retries + 1} tries", last.status)
+                        f"{retry.attempts} tries", last.status)
         raise _Stop(FetchOutcome.CONNECT_ERROR, last.detail if last else "failed")
 
     async def _robots_allowed(self, key: UrlKey, address: str) -> tuple[bool, str]:
@@ -399,24 +415,40 @@ def _looks_binary(body: bytes) -> bool:
     return b"\x00" in head
 
 
-def _retry_after(value: str | None) -> float | None:
-    """RFC 9110 section 10.2.3: seconds, or an HTTP date."""
-    if not value:
-        return None
-    value = value.strip()
-    if value.isascii() and value.isdigit():
-        return float(value)
-    try:
-        when = email.utils.parsedate_to_datetime(value)
-    except (TypeError, ValueError):
-        return None
-    return max(0.0, when.timestamp() - time.time())
+def _causes(exc: BaseException) -> Iterator[BaseException]:
+    """``exc`` and the exceptions behind it (``__cause__``, else ``__context__``), bounded."""
+    seen: set[int] = set()
+    current: BaseException | None = exc
+    while current is not None and id(current) not in seen and len(seen) < 32:
+        seen.add(id(current))
+        yield current
+        current = current.__cause__ or current.__context__
 
 
-def _backoff(state) -> float:
-    exc = state.outcome.exception() if state.outcome else None
-    wait = getattr(exc, "wait_s", 0.0) or 0.0
-    return max(wait, min(2.0, 0.1 * 2 ** (state.attempt_number - 1)))
+def _tls_failure(exc: BaseException) -> ssl.SSLError | None:
+    """The ``ssl.SSLError`` behind a connect failure (a certificate that does not verify,
+    a handshake the server botched), or None when the connection itself failed.
+
+    httpx raises ``ConnectError`` from httpcore's ``ConnectError``, raised from the
+    ``ssl`` module's error. An EOF in the middle of the handshake (``ssl.SSLEOFError``)
+    is the peer hanging up, a connection failure worth another try, as a reset is.
+    """
+    for cause in _causes(exc):
+        if isinstance(cause, ssl.SSLError):
+            return None if isinstance(cause, ssl.SSLEOFError) else cause
+    return None
+
+
+def _head_too_large(exc: BaseException) -> bool:
+    """Whether h11 gave up because the response head outgrew its buffer.
+
+    h11 raises ``RemoteProtocolError("Receive buffer too long", error_status_hint=431)``
+    once an incomplete head passes its size limit (httpcore sets 100 KiB); httpcore and
+    httpx keep that error in the chain. ``error_status_hint`` is public h11 API; 431 is
+    "Request Header Fields Too Large" (RFC 6585 section 5), the one case that sets it.
+    """
+    return any(isinstance(cause, h11.RemoteProtocolError) and cause.error_status_hint == 431
+               for cause in _causes(exc))
 
 
 class SyncFetcher:

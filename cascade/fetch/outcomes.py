@@ -10,6 +10,8 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any
 
+__all__ = ["FetchOutcome", "FetchResult", "Hop"]
+
 
 class FetchOutcome(StrEnum):
     OK = "ok"

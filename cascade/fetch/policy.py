@@ -9,6 +9,12 @@ from __future__ import annotations
 import ipaddress
 from dataclasses import dataclass, field
 
+from cascade.fetch.retry import RetryPolicy
+
+__all__ = ["DEFAULT_CONTENT_TYPES", "FetchPolicy"]
+
+__all__ = ["DEFAULT_CONTENT_TYPES", "FetchPolicy"]
+
 DEFAULT_CONTENT_TYPES = ("text/html", "application/xhtml+xml", "text/plain")
 
 
@@ -33,8 +39,7 @@ class FetchPolicy:
     per_host_concurrency: int = 2
     per_host_delay_s: float = 0.5  # least time between two requests to one host
     concurrency: int = 64  # fetches in flight at once, all hosts together
-    retries: int = 2  # extra tries for transient failures, within the deadline
-    max_retry_after_s: float = 5.0  # a longer Retry-After is not waited for
+    retry: RetryPolicy = RetryPolicy()  # transient failures: how often, how long to wait
     allow_networks: tuple[ipaddress.IPv4Network | ipaddress.IPv6Network, ...] = field(
         default=())  # holes in the address guard: explicit, empty by default
 
@@ -46,9 +51,12 @@ class FetchPolicy:
                      "per_host_concurrency", "robots_max_bytes"):
             if getattr(self, name) < 1:
                 raise ValueError(f"FetchPolicy.{name} must be at least 1")
-        if self.max_redirects < 0 or self.retries < 0 or self.max_encoding_layers < 0:
-            raise ValueError("FetchPolicy.max_redirects, retries and max_encoding_layers "
+        if self.max_redirects < 0 or self.max_encoding_layers < 0:
+            raise ValueError("FetchPolicy.max_redirects and max_encoding_layers "
                              "must not be negative")
+        if not isinstance(self.retry, RetryPolicy):
+            raise ValueError("FetchPolicy.retry must be a RetryPolicy, e.g. "
+                             f"RetryPolicy(retries=1), not {type(self.retry).__name__}")
         bad = [s for s in self.schemes if s not in ("http", "https")]
         if bad:
             raise ValueError(f"FetchPolicy.schemes may hold only http and https, not {bad}")

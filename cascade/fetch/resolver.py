@@ -15,9 +15,21 @@ import socket
 from collections.abc import Iterable, Mapping, Sequence
 from typing import Protocol
 
+from cascade.errors import CascadeError
 
-class ResolutionError(Exception):
-    """The name has no usable address (NXDOMAIN, no A/AAAA, resolver failure)."""
+__all__ = [
+    "ResolutionError",
+    "Resolver",
+    "StaticResolver",
+    "SystemResolver",
+    "parse_resolve_overrides",
+]
+
+
+class ResolutionError(CascadeError):
+    """The name has no usable address (NXDOMAIN, no A/AAAA, resolver failure). Inside the
+    fetcher it becomes the ``dns-error`` outcome; it reaches a caller only from a resolver
+    used on its own."""
 
 
 class Resolver(Protocol):

@@ -14,6 +14,8 @@ from dataclasses import dataclass
 
 from protego import Protego
 
+__all__ = ["RobotsCache", "RobotsRules", "interpret"]
+
 
 @dataclass(frozen=True)
 class RobotsRules:

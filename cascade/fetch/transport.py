@@ -7,23 +7,64 @@ request, and the network backend connects to that address, or refuses. TLS still
 against the host name (SNI and certificate checks), since httpcore passes the origin's host
 as ``server_hostname``.
 
-Relies on ``httpx.AsyncHTTPTransport`` sending through ``self._pool`` (httpx 0.27-0.28);
-``tests/test_fetch_hostile.py`` proves the pin holds, so a change there fails loudly.
+Public API only: ``PinnedTransport`` is an ``httpx.AsyncBaseTransport`` that sends through
+its own ``httpcore.AsyncConnectionPool`` (HTTP/1.1, no proxy, no environment settings),
+whose network backend is ``PinnedBackend`` around the public ``httpcore.AnyIOBackend``
+(httpcore 1.0; needs anyio, which httpx depends on). httpcore's exceptions are raised as
+the matching public httpx exceptions, the httpcore one kept as ``__cause__``, as
+``httpx.AsyncHTTPTransport`` does. Written against httpx 0.27-0.29 and httpcore 1.0;
+``tests/test_fetch_hostile.py`` proves the pin holds.
 """
 
 from __future__ import annotations
 
+import contextlib
 import contextvars
 import ssl
 import typing
+from collections.abc import AsyncIterator, Iterator
 from dataclasses import dataclass
 
 import httpcore
 import httpx
-from httpcore._backends.auto import AutoBackend
+
+__all__ = ["Pin", "PinnedBackend", "PinnedTransport", "pinned", "unpin"]
+
+__all__ = ["Pin", "PinnedBackend", "PinnedTransport", "pinned", "unpin"]
 
 _PIN: contextvars.ContextVar[Pin | None] = contextvars.ContextVar("cascade_fetch_pin",
                                                                   default=None)
+
+# httpcore exception -> public httpx exception; a subclass comes before its base, so the
+# first match is the most specific (the same pairs as httpx's own transport uses)
+_HTTPCORE_TO_HTTPX: tuple[tuple[type[Exception], type[httpx.TransportError]], ...] = (
+    (httpcore.ConnectTimeout, httpx.ConnectTimeout),
+    (httpcore.ReadTimeout, httpx.ReadTimeout),
+    (httpcore.WriteTimeout, httpx.WriteTimeout),
+    (httpcore.PoolTimeout, httpx.PoolTimeout),
+    (httpcore.TimeoutException, httpx.TimeoutException),
+    (httpcore.ConnectError, httpx.ConnectError),
+    (httpcore.ReadError, httpx.ReadError),
+    (httpcore.WriteError, httpx.WriteError),
+    (httpcore.NetworkError, httpx.NetworkError),
+    (httpcore.ProxyError, httpx.ProxyError),
+    (httpcore.UnsupportedProtocol, httpx.UnsupportedProtocol),
+    (httpcore.LocalProtocolError, httpx.LocalProtocolError),
+    (httpcore.RemoteProtocolError, httpx.RemoteProtocolError),
+    (httpcore.ProtocolError, httpx.ProtocolError),
+)
+
+
+@contextlib.contextmanager
+def _httpx_errors() -> Iterator[None]:
+    """Raise an httpcore exception as the matching httpx one (the original as its cause)."""
+    try:
+        yield
+    except Exception as exc:
+        for core_type, httpx_type in _HTTPCORE_TO_HTTPX:
+            if isinstance(exc, core_type):
+                raise httpx_type(str(exc)) from exc
+        raise
 
 
 @dataclass(frozen=True)
@@ -37,7 +78,7 @@ class PinnedBackend(httpcore.AsyncNetworkBackend):
     """Connects to the pinned address of the current task; any other connect is refused."""
 
     def __init__(self) -> None:
-        self._backend = AutoBackend()
+        self._backend = httpcore.AnyIOBackend()
         self.connects: list[tuple[str, int, str]] = []  # (host, port, address), for tests
 
     async def connect_tcp(
@@ -66,12 +107,30 @@ class PinnedBackend(httpcore.AsyncNetworkBackend):
         await self._backend.sleep(seconds)
 
 
-class PinnedTransport(httpx.AsyncHTTPTransport):
-    """``httpx.AsyncHTTPTransport`` whose pool connects through ``PinnedBackend``;
-    no proxy, no environment settings, HTTP/1.1."""
+class _ResponseStream(httpx.AsyncByteStream):
+    """The body of an httpcore response, with httpcore errors raised as httpx ones."""
+
+    def __init__(self, stream: typing.AsyncIterable[bytes]) -> None:
+        self._stream = stream
+
+    async def __aiter__(self) -> AsyncIterator[bytes]:
+        with _httpx_errors():
+            async for chunk in self._stream:
+                yield chunk
+
+    async def aclose(self) -> None:
+        close = getattr(self._stream, "aclose", None)
+        if close is not None:
+            with _httpx_errors():
+                await close()
+
+
+class PinnedTransport(httpx.AsyncBaseTransport):
+    """An httpx transport whose connection pool connects through ``PinnedBackend``;
+    no proxy, no environment settings, HTTP/1.1. ``backend.connects`` records each
+    connect, for tests."""
 
     def __init__(self, limits: httpx.Limits, ssl_context: ssl.SSLContext | None = None) -> None:
-        super().__init__(limits=limits, trust_env=False)
         self.backend = PinnedBackend()
         self._pool = httpcore.AsyncConnectionPool(
             ssl_context=ssl_context or httpx.create_ssl_context(trust_env=False),
@@ -83,6 +142,29 @@ class PinnedTransport(httpx.AsyncHTTPTransport):
             network_backend=self.backend,
         )
 
+    async def handle_async_request(self, request: httpx.Request) -> httpx.Response:
+        """Send ``request`` over the pool; the response body is left to stream."""
+        core_request = httpcore.Request(
+            method=request.method,
+            url=httpcore.URL(scheme=request.url.raw_scheme, host=request.url.raw_host,
+                             port=request.url.port, target=request.url.raw_path),
+            headers=request.headers.raw,
+            content=request.stream,  # type: ignore[arg-type]
+            extensions=request.extensions,
+        )
+        with _httpx_errors():
+            core_response = await self._pool.handle_async_request(core_request)
+        return httpx.Response(
+            status_code=core_response.status,
+            headers=core_response.headers,
+            stream=_ResponseStream(core_response.stream),  # type: ignore[arg-type]
+            extensions=core_response.extensions,
+            request=request,
+        )
+
+    async def aclose(self) -> None:
+        await self._pool.aclose()
+
 
 def pinned(host: str, port: int, address: str) -> contextvars.Token:
     """Pin the current task's next connection to ``address``; reset with ``unpin``."""
@@ -90,4 +172,5 @@ def pinned(host: str, port: int, address: str) -> contextvars.Token:
 
 
 def unpin(token: contextvars.Token) -> None:
+    """Undo the ``pinned`` call that returned ``token``."""
     _PIN.reset(token)
