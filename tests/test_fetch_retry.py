@@ -179,7 +179,7 @@ def _run_get(retry: RetryPolicy, failures: list[Exception]) -> tuple[object, int
     async def run() -> object:
         nonlocal sends
         async with Fetcher(FetchPolicy(retry=retry)) as fetcher:
-            async def send(key, address, max_bytes):
+            async def send(key, address, max_bytes, truncate=False):
                 nonlocal sends
                 sends += 1
                 if failures:

@@ -57,23 +57,47 @@ class _Layer:
             raise BodyTooLarge("decoded body over the cap")
         return out
 
+    def finish(self) -> None:
+        """The stream ended: a compressed stream cut short is broken, not a page."""
+        if self._started and not self._d.eof:
+            raise BadEncoding(f"{self.coding} stream is truncated (ended before its end mark)")
+
 
 async def read_capped(
-    chunks: AsyncIterator[bytes], encodings: list[str], max_bytes: int, max_decoded: int
+    chunks: AsyncIterator[bytes], encodings: list[str], max_bytes: int, max_decoded: int,
+    truncate: bool = False,
 ) -> tuple[bytes, int]:
-    """Read all chunks; return ``(decoded body, bytes read off the wire)``.
-    Raises ``BodyTooLarge`` as soon as a cap is passed (nothing more is read)."""
+    """Read all chunks; return ``(decoded body, body bytes received)``.
+
+    Raises ``BodyTooLarge`` as soon as a cap is passed (nothing more is read), or, with
+    ``truncate``, stops reading there and returns what fits (robots.txt: RFC 9309 section
+    2.5 lets a parser ignore what lies past its limit). A compressed stream that ends
+    before its end mark raises ``BadEncoding`` (unless truncated on purpose)."""
     layers = [_Layer(c) for c in reversed(encodings)]
     wire = 0
     out = bytearray()
     async for chunk in chunks:
+        if truncate and wire + len(chunk) > max_bytes:
+            chunk = chunk[: max_bytes - wire]
         wire += len(chunk)
         if wire > max_bytes:
             raise BodyTooLarge(f"more than {max_bytes} bytes on the wire")
         data = chunk
-        for layer in layers:
-            data = layer.feed(data, max_decoded - len(out))
+        try:
+            for layer in layers:
+                data = layer.feed(data, max_decoded - len(out))
+        except BodyTooLarge:
+            if not truncate:
+                raise
+            return bytes(out), wire
         if len(out) + len(data) > max_decoded:
-            raise BodyTooLarge(f"more than {max_decoded} bytes after decoding")
+            if not truncate:
+                raise BodyTooLarge(f"more than {max_decoded} bytes after decoding")
+            out += data[: max_decoded - len(out)]
+            return bytes(out), wire
         out += data
+        if truncate and (wire >= max_bytes or len(out) >= max_decoded):
+            return bytes(out), wire
+    for layer in layers:
+        layer.finish()
     return bytes(out), wire

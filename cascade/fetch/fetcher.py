@@ -5,16 +5,21 @@ For each hop: normalize the URL, refuse userinfo and disallowed schemes and port
 the host (injectable resolver), keep only addresses the guard allows, pin the connection to
 one of them, obey robots.txt, wait for the host's turn, send a GET with no cookies, no
 credentials and no referer, and follow a redirect by hand (the redirect's body is never
-read). The whole fetch, DNS to last byte, runs under one deadline.
+read). The whole fetch, DNS to last byte, runs under one deadline, which starts when the
+fetch leaves the fetcher's own queues (global concurrency, per-host slots and delay): time
+waiting there has its own bound (``max_queue_s``, outcome ``queue-timeout``), so a long
+queue behind one slow host never turns into timeouts of requests that were never sent.
+Every byte read off the socket is counted (``wire.WireMeter``) against the caps.
 """
 
 from __future__ import annotations
 
 import asyncio
+import contextvars
 import ssl
 import time
-from collections.abc import AsyncIterator, Iterable, Iterator
-from dataclasses import dataclass
+from collections.abc import AsyncIterator, Awaitable, Iterable, Iterator
+from dataclasses import dataclass, field
 from urllib.parse import urljoin
 
 import h11
@@ -37,9 +42,14 @@ from cascade.fetch.policy import FetchPolicy
 from cascade.fetch.resolver import ResolutionError, Resolver, SystemResolver
 from cascade.fetch.robots import RobotsCache
 from cascade.fetch.transport import PinnedTransport, pinned, unpin
+from cascade.fetch.wire import (
+    WireCapExceeded,
+    WireMeter,
+    current_meter,
+    metering,
+    reset_metering,
+)
 from cascade.urls import DEFAULT_PORTS, UrlKey, normalize
-
-__all__ = ["Fetcher", "REDIRECT_STATUSES", "SyncFetcher"]
 
 __all__ = ["REDIRECT_STATUSES", "Fetcher", "SyncFetcher"]
 
@@ -68,6 +78,21 @@ class _HostState:
     next_start: float = 0.0
 
 
+@dataclass
+class _Clock:
+    """One fetch's time: the deadlines running now (the fetch's, a robots.txt load's) and
+    the time spent in the fetcher's own queues, which none of them counts."""
+
+    timeouts: list[asyncio.Timeout] = field(default_factory=list)
+    queued_s: float = 0.0  # all time in the fetcher's queues
+    queued_before: float = 0.0  # of it, waiting for a global fetch slot before the start
+    started: float = 0.0
+
+
+_CLOCK: contextvars.ContextVar[_Clock | None] = contextvars.ContextVar("cascade_fetch_clock",
+                                                                       default=None)
+
+
 class Fetcher:
     """Async fetcher. Use as ``async with Fetcher(policy) as f: await f.fetch(url)``.
 
@@ -86,7 +111,10 @@ class Fetcher:
         self.transport = PinnedTransport(limits, ssl_context=ssl_context)
         self._global = asyncio.Semaphore(self.policy.concurrency)
         self._hosts: dict[str, _HostState] = {}
-        self._robots = RobotsCache(self.policy.robots_cache_s)
+        self._robots = RobotsCache(self.policy.robots_cache_s,
+                                   max_bytes=self.policy.robots_cache_bytes,
+                                   failure_ttl_s=self.policy.robots_failure_cache_s,
+                                   parse_timeout_s=self.policy.robots_parse_timeout_s)
 
     async def __aenter__(self) -> Fetcher:
         return self
@@ -95,26 +123,76 @@ class Fetcher:
         await self.aclose()
 
     async def aclose(self) -> None:
+        self._robots.close()
         await self.transport.aclose()
 
     # ------------------------------------------------------------------ public
     async def fetch(self, url: str) -> FetchResult:
         """Fetch one URL within the policy; never raises for anything the network does."""
-        started = time.monotonic()
         hops: list[Hop] = []
-        async with self._global:
-            try:
-                async with asyncio.timeout(self.policy.deadline_s):
-                    return await self._fetch(url, started, hops)
-            except TimeoutError:
-                return self._result(url, hops, started, FetchOutcome.TIMEOUT,
-                                    f"deadline of {self.policy.deadline_s} s passed")
-            except _Stop as stop:
-                return self._result(url, hops, started, stop.outcome, stop.detail,
-                                    status=stop.status)
-            except Exception as exc:  # noqa: BLE001 - a fetch never raises: last resort
-                return self._result(url, hops, started, FetchOutcome.BAD_RESPONSE,
-                                    f"unexpected {type(exc).__name__}: {exc}"[:300])
+        clock = _Clock()
+        queued_at = time.monotonic()
+        try:
+            async with asyncio.timeout(self.policy.max_queue_s):
+                await self._global.acquire()
+        except TimeoutError:
+            clock.queued_s = clock.queued_before = time.monotonic() - queued_at
+            clock.started = time.monotonic()
+            return self._result(url, hops, clock, FetchOutcome.QUEUE_TIMEOUT,
+                                f"waited {self.policy.max_queue_s} s for a free fetch slot",
+                                meter=None)
+        clock.queued_s = clock.queued_before = time.monotonic() - queued_at
+        clock.started = time.monotonic()
+        meter = WireMeter(self._wire_limit())
+        clock_token = _CLOCK.set(clock)
+        meter_token = metering(meter)
+        try:
+            async with asyncio.timeout(self.policy.deadline_s) as deadline:
+                clock.timeouts.append(deadline)
+                return await self._fetch(url, clock, hops, meter)
+        except TimeoutError:
+            return self._result(url, hops, clock, FetchOutcome.TIMEOUT,
+                                f"deadline of {self.policy.deadline_s} s passed", meter=meter)
+        except _Stop as stop:
+            return self._result(url, hops, clock, stop.outcome, stop.detail, meter=meter,
+                                status=stop.status)
+        except Exception as exc:  # noqa: BLE001 - a fetch never raises: last resort
+            return self._result(url, hops, clock, FetchOutcome.BAD_RESPONSE,
+                                f"unexpected {type(exc).__name__}: {exc}"[:300], meter=meter)
+        finally:
+            reset_metering(meter_token)
+            _CLOCK.reset(clock_token)
+            self._global.release()
+
+    def _wire_limit(self) -> int:
+        """Every byte one fetch may read: each hop's head, and one body with its framing."""
+        p = self.policy
+        return p.max_bytes + (p.max_redirects + 1) * p.max_header_bytes
+
+    async def _in_queue(self, waiting: Awaitable[object], what: str) -> None:
+        """Wait for one of the fetcher's own queues with every running deadline paused and
+        the fetch's queue time bounded by ``max_queue_s``."""
+        clock = _CLOCK.get()
+        if clock is None:  # not inside fetch(): no deadline to pause
+            await waiting
+            return
+        left = self.policy.max_queue_s - clock.queued_s
+        paused = [(t, t.when()) for t in clock.timeouts]
+        for t, _ in paused:
+            t.reschedule(None)
+        began = time.monotonic()
+        try:
+            async with asyncio.timeout(max(left, 0.0)):
+                await waiting
+        except TimeoutError:
+            raise _Stop(FetchOutcome.QUEUE_TIMEOUT,
+                        f"waited over {self.policy.max_queue_s} s in the fetcher's queues "
+                        f"({what})") from None
+        finally:
+            waited = time.monotonic() - began
+            clock.queued_s += waited
+            for t, when in paused:
+                t.reschedule(None if when is None else when + waited)
 
     async def fetch_many(self, urls: Iterable[str], window: int | None = None
                          ) -> AsyncIterator[FetchResult]:
@@ -140,11 +218,14 @@ class Fetcher:
                 task.cancel()
 
     # ------------------------------------------------------------------ steps
-    def _result(self, url: str, hops: list[Hop], started: float, outcome: FetchOutcome,
-                detail: str = "", **kw) -> FetchResult:
+    def _result(self, url: str, hops: list[Hop], clock: _Clock, outcome: FetchOutcome,
+                detail: str = "", meter: WireMeter | None = None, **kw) -> FetchResult:
         final = hops[-1].url if hops else url
+        waited_inside = clock.queued_s - clock.queued_before  # host queues, after the start
+        active = max(0.0, time.monotonic() - clock.started - waited_inside)
         return FetchResult(url=url, final_url=kw.pop("final_url", final), outcome=outcome,
-                           elapsed_ms=(time.monotonic() - started) * 1000,
+                           elapsed_ms=active * 1000, queued_ms=clock.queued_s * 1000,
+                           bytes_read=kw.pop("bytes_read", meter.read if meter else 0),
                            redirects=tuple(hops[:-1]) if hops else (), detail=detail, **kw)
 
     def _check_url(self, url: str) -> UrlKey:
@@ -156,10 +237,21 @@ class Fetcher:
             raise _Stop(FetchOutcome.BAD_URL, "the URL carries user credentials")
         if key.scheme not in self.policy.schemes:
             raise _Stop(FetchOutcome.BAD_URL, f"scheme {key.scheme} is not allowed")
+        return key
+
+    def _check_port(self, key: UrlKey) -> int:
+        """The hop's port, if the policy allows it. Checked after the address, so that a
+        redirect to a refused address is reported as that, the more dangerous finding."""
         port = key.port or DEFAULT_PORTS[key.scheme]
         if port not in self.policy.ports:
             raise _Stop(FetchOutcome.BAD_URL, f"port {port} is not allowed")
-        return key
+        return port
+
+    async def _checked_hop(self, key: UrlKey) -> tuple[int, str]:
+        """``(port, address)`` of one hop: the address the guard allows, then the port."""
+        port = key.port or DEFAULT_PORTS[key.scheme]
+        address = await self._address(key, port)
+        return self._check_port(key), address
 
     async def _address(self, key: UrlKey, port: int) -> str:
         if key.is_ip:
@@ -188,94 +280,125 @@ class Fetcher:
                 self.policy.per_host_concurrency))
         return state
 
-    async def _send(self, key: UrlKey, address: str, max_bytes: int) -> tuple[
-            httpx.Response, bytes | None]:
+    async def _send(self, key: UrlKey, address: str, max_bytes: int,
+                    truncate: bool = False) -> tuple[httpx.Response, bytes | None]:
         """One GET to a pinned address. Returns the response; for a redirect or error status
-        the body is not read (None); otherwise the capped, decoded body."""
+        the body is not read (None); otherwise the capped, decoded body (with ``truncate``,
+        what fits under the caps, for robots.txt)."""
         port = key.port or DEFAULT_PORTS[key.scheme]
         state = await self._host_turn(key.host)
-        async with state.slots:
+        await self._in_queue(state.slots.acquire(), f"a free slot for {key.host}")
+        try:
             now = time.monotonic()
             if state.next_start > now:
-                await asyncio.sleep(state.next_start - now)
+                await self._in_queue(asyncio.sleep(state.next_start - now),
+                                     f"the delay between requests to {key.host}")
+            now = time.monotonic()
             state.next_start = max(now, state.next_start) + self.policy.per_host_delay_s
-            request = httpx.Request("GET", key.url, headers={
-                "User-Agent": self.policy.user_agent,
-                "Accept": "text/html,application/xhtml+xml,text/plain;q=0.9,*/*;q=0.1",
-                "Accept-Encoding": "gzip, deflate",
-                "Accept-Language": "en;q=0.9, *;q=0.5",
-            }, extensions={"timeout": {"connect": self.policy.connect_timeout_s,
-                                       "read": self.policy.deadline_s,
-                                       "write": self.policy.deadline_s,
-                                       "pool": self.policy.deadline_s}})
-            token = pinned(key.host, port, address)
-            try:
-                response = await self.transport.handle_async_request(request)
-            except httpx.ConnectError as exc:
-                text = str(exc)
-                tls = _tls_failure(exc)
-                if tls is not None:
-                    raise _Stop(FetchOutcome.TLS_ERROR, (text or str(tls))[:300]) from None
-                raise _Transient(f"connect: {text[:300]}") from None
-            except (httpx.ReadError, httpx.WriteError, httpx.RemoteProtocolError) as exc:
-                text = str(exc)
-                if _head_too_large(exc):
-                    raise _Stop(FetchOutcome.TOO_LARGE, "response headers too large") from None
-                if isinstance(exc, httpx.RemoteProtocolError):
-                    raise _Stop(FetchOutcome.BAD_RESPONSE, f"not HTTP: {text[:200]}") from None
-                raise _Transient(f"read: {text[:300]}") from None
-            except httpx.TimeoutException as exc:
-                raise _Stop(FetchOutcome.TIMEOUT, f"{type(exc).__name__}") from None
-            except (httpx.HTTPError, httpcore.ConnectError) as exc:
-                raise _Stop(FetchOutcome.CONNECT_ERROR, str(exc)[:300]) from None
-            finally:
-                unpin(token)
-            try:
-                header_bytes = sum(len(k) + len(v) + 4 for k, v in response.headers.raw)
-                if header_bytes > self.policy.max_header_bytes:
-                    raise _Stop(FetchOutcome.TOO_LARGE,
-                                f"response headers are {header_bytes} bytes", response.status_code)
-                status = response.status_code
-                retry = self.policy.retry
-                if retry.is_transient(status):
-                    wait = retry.parse_retry_after(response.headers.get("retry-after"))
-                    if retry.gives_up_on(wait):
-                        raise _Stop(FetchOutcome.HTTP_ERROR,
-                                    f"status {status}, Retry-After {wait:.0f} s is over the "
-                                    f"limit of {retry.max_retry_after_s} s", status)
-                    raise _Transient(f"status {status}", wait or 0.0, status)
-                if status in REDIRECT_STATUSES or status >= 400:
-                    return response, None
-                body = await self._body(response, max_bytes)
-                return response, body
-            finally:
-                await response.aclose()
+            return await self._exchange(key, port, address, max_bytes, truncate)
+        finally:
+            state.slots.release()
 
-    async def _body(self, response: httpx.Response, max_bytes: int) -> bytes:
+    async def _exchange(self, key: UrlKey, port: int, address: str, max_bytes: int,
+                        truncate: bool) -> tuple[httpx.Response, bytes | None]:
+        request = httpx.Request("GET", key.url, headers={
+            "User-Agent": self.policy.user_agent,
+            "Accept": "text/html,application/xhtml+xml,text/plain;q=0.9,*/*;q=0.1",
+            "Accept-Encoding": "gzip, deflate",
+            "Accept-Language": "en;q=0.9, *;q=0.5",
+        }, extensions={"timeout": {"connect": self.policy.connect_timeout_s,
+                                   "read": self.policy.deadline_s,
+                                   "write": self.policy.deadline_s,
+                                   "pool": self.policy.deadline_s}})
+        meter = _current_meter()
+        token = pinned(key.host, port, address)
+        if meter is not None:  # the status line, headers and any 1xx responses before them
+            meter.start_phase(self.policy.max_header_bytes, "response head", at_read=True)
+        try:
+            response = await self.transport.handle_async_request(request)
+        except httpx.ConnectError as exc:
+            text = str(exc)
+            tls = _tls_failure(exc)
+            if tls is not None:
+                raise _Stop(FetchOutcome.TLS_ERROR, (text or str(tls))[:300]) from None
+            raise _Transient(f"connect: {text[:300]}") from None
+        except (httpx.ReadError, httpx.WriteError, httpx.RemoteProtocolError) as exc:
+            text = str(exc)
+            if _wire_cap(exc) or (meter is not None and meter.exceeded):
+                raise _Stop(FetchOutcome.TOO_LARGE, (meter.exceeded if meter is not None and
+                                                     meter.exceeded else text)[:300]) from None
+            if _head_too_large(exc):
+                raise _Stop(FetchOutcome.TOO_LARGE, "response headers too large") from None
+            if isinstance(exc, httpx.RemoteProtocolError):
+                raise _Stop(FetchOutcome.BAD_RESPONSE, f"not HTTP: {text[:200]}") from None
+            raise _Transient(f"read: {text[:300]}") from None
+        except httpx.TimeoutException as exc:
+            raise _Stop(FetchOutcome.TIMEOUT, f"{type(exc).__name__}") from None
+        except (httpx.HTTPError, httpcore.ConnectError) as exc:
+            raise _Stop(FetchOutcome.CONNECT_ERROR, str(exc)[:300]) from None
+        finally:
+            unpin(token)
+            if meter is not None:
+                meter.end_phase()
+        try:
+            header_bytes = sum(len(k) + len(v) + 4 for k, v in response.headers.raw)
+            if header_bytes > self.policy.max_header_bytes:
+                raise _Stop(FetchOutcome.TOO_LARGE,
+                            f"response headers are {header_bytes} bytes", response.status_code)
+            status = response.status_code
+            retry = self.policy.retry
+            if retry.is_transient(status):
+                wait = retry.parse_retry_after(response.headers.get("retry-after"))
+                if retry.gives_up_on(wait):
+                    raise _Stop(FetchOutcome.HTTP_ERROR,
+                                f"status {status}, Retry-After {wait:.0f} s is over the "
+                                f"limit of {retry.max_retry_after_s} s", status)
+                raise _Transient(f"status {status}", wait or 0.0, status)
+            if status in REDIRECT_STATUSES or status >= 400:
+                return response, None
+            if meter is not None:  # the body and its framing (chunk-size lines, extensions)
+                meter.start_phase(max_bytes + (64 << 10) if truncate else max_bytes,
+                                  "response body")
+            try:
+                body = await self._body(response, max_bytes, truncate)
+            finally:
+                if meter is not None:
+                    meter.end_phase()
+            return response, body
+        finally:
+            await response.aclose()
+
+    async def _body(self, response: httpx.Response, max_bytes: int,
+                    truncate: bool = False) -> bytes:
         try:
             encodings = parse_encodings(response.headers.get("content-encoding"),
                                         self.policy.max_encoding_layers)
         except BadEncoding as exc:
             raise _Stop(FetchOutcome.BAD_RESPONSE, str(exc), response.status_code) from None
         length = response.headers.get("content-length")
-        if length and length.isdigit() and int(length) > max_bytes:
+        if not truncate and length and length.isdigit() and int(length) > max_bytes:
             raise _Stop(FetchOutcome.TOO_LARGE, f"Content-Length {length} is over the cap",
                         response.status_code)
+        decoded_cap = max_bytes if truncate else self.policy.max_decoded_bytes
+        meter = _current_meter()
         try:
-            body, wire = await read_capped(_raw(response), encodings, max_bytes,
-                                           self.policy.max_decoded_bytes)
+            body, _ = await read_capped(_raw(response), encodings, max_bytes, decoded_cap,
+                                        truncate=truncate)
         except BodyTooLarge as exc:
             raise _Stop(FetchOutcome.TOO_LARGE, str(exc), response.status_code) from None
         except BadEncoding as exc:
             raise _Stop(FetchOutcome.BAD_RESPONSE, str(exc), response.status_code) from None
         except (httpx.ReadError, httpx.RemoteProtocolError) as exc:
+            if _wire_cap(exc) or (meter is not None and meter.exceeded):
+                raise _Stop(FetchOutcome.TOO_LARGE,
+                            (meter.exceeded if meter is not None and meter.exceeded
+                             else str(exc))[:300], response.status_code) from None
             raise _Stop(FetchOutcome.BAD_RESPONSE, f"body broken off: {exc}"[:300],
                         response.status_code) from None
-        response.extensions["cascade_wire_bytes"] = wire
         return body
 
-    async def _get(self, key: UrlKey, address: str, max_bytes: int) -> tuple[
-            httpx.Response, bytes | None]:
+    async def _get(self, key: UrlKey, address: str, max_bytes: int,
+                   truncate: bool = False) -> tuple[httpx.Response, bytes | None]:
         """``_send`` with retries for transient failures (tenacity, driven by the policy's
         ``RetryPolicy``), inside the deadline."""
         retry = self.policy.retry
@@ -295,7 +418,7 @@ class Fetcher:
                 reraise=False,
             ):
                 with attempt:
-                    return await self._send(key, address, max_bytes)
+                    return await self._send(key, address, max_bytes, truncate)
         except RetryError as exc:
             last = exc.last_attempt.exception()  # type: ignore[assignment]
         if last is not None and last.status is not None:
@@ -308,12 +431,26 @@ class Fetcher:
 
         async def load(origin_url: str) -> tuple[int | None, bytes, str]:
             # its own share of the deadline, so a stalling robots.txt is "unreachable"
-            # (RFC 9309 section 2.3.1.4: assume complete disallow), not a fetch timeout
+            # (RFC 9309 section 2.3.1.4: assume complete disallow), not a fetch timeout;
+            # and its own wire meter: its bytes count against the robots caps only
+            hops = 6  # the robots.txt request and its five redirects
+            robots_meter = WireMeter(self.policy.robots_max_bytes + (64 << 10)
+                                     + hops * self.policy.max_header_bytes)
+            token = metering(robots_meter)
+            clock = _CLOCK.get()
             try:
-                async with asyncio.timeout(self.policy.deadline_s / 3):
-                    return await load_within(origin_url)
+                async with asyncio.timeout(self.policy.deadline_s / 3) as robots_deadline:
+                    if clock is not None:
+                        clock.timeouts.append(robots_deadline)
+                    try:
+                        return await load_within(origin_url)
+                    finally:
+                        if clock is not None:
+                            clock.timeouts.remove(robots_deadline)
             except TimeoutError:
                 return None, b"", "timed out"
+            finally:
+                reset_metering(token)
 
         async def load_within(origin_url: str) -> tuple[int | None, bytes, str]:
             target = normalize(origin_url + "/robots.txt")
@@ -322,12 +459,15 @@ class Fetcher:
             while True:
                 try:
                     response, body = await self._get(current, current_address,
-                                                     self.policy.robots_max_bytes)
+                                                     self.policy.robots_max_bytes,
+                                                     truncate=True)
                 except _Stop as stop:
                     if stop.outcome is FetchOutcome.HTTP_ERROR and stop.status:
                         return stop.status, b"", stop.detail
+                    if stop.outcome is FetchOutcome.QUEUE_TIMEOUT:
+                        raise
                     if stop.outcome is FetchOutcome.TOO_LARGE:
-                        return None, b"", "robots.txt too large"
+                        return None, b"", f"robots.txt over its caps: {stop.detail}"
                     return None, b"", stop.detail
                 if response.status_code in REDIRECT_STATUSES and hops_left > 0:
                     location = response.headers.get("location")
@@ -335,8 +475,7 @@ class Fetcher:
                         return None, b"", "redirect without Location"
                     hops_left -= 1
                     current = self._check_url(_join(current.url, location))
-                    port = current.port or DEFAULT_PORTS[current.scheme]
-                    current_address = await self._address(current, port)
+                    _port, current_address = await self._checked_hop(current)
                     continue
                 return response.status_code, body or b"", f"status {response.status_code}"
 
@@ -348,13 +487,13 @@ class Fetcher:
         allowed = rules.allows(key.url, agent)
         return allowed, rules.detail
 
-    async def _fetch(self, url: str, started: float, hops: list[Hop]) -> FetchResult:
+    async def _fetch(self, url: str, clock: _Clock, hops: list[Hop],
+                     meter: WireMeter) -> FetchResult:
         current = url
         for _ in range(self.policy.max_redirects + 1):
             key = self._check_url(current)
-            port = key.port or DEFAULT_PORTS[key.scheme]
             try:
-                address = await self._address(key, port)
+                _port, address = await self._checked_hop(key)
             except _Stop:
                 hops.append(Hop(key.url, None, None))
                 raise
@@ -388,10 +527,11 @@ class Fetcher:
                 raise _Stop(FetchOutcome.NOT_TEXT, "binary bytes behind a text content type",
                             status)
             text, codec = decode_text(body, content_type)
-            return self._result(
-                url, hops, started, FetchOutcome.OK, "", status=status,
-                content_type=media, charset=codec, text=text,
-                bytes_read=int(response.extensions.get("cascade_wire_bytes", len(body))))
+            if codec == "replacement":  # WHATWG: such labels decode to one U+FFFD
+                raise _Stop(FetchOutcome.NOT_TEXT, "the declared encoding is one a browser "
+                            "replaces by a single error character", status)
+            return self._result(url, hops, clock, FetchOutcome.OK, "", meter=meter,
+                                status=status, content_type=media, charset=codec, text=text)
         raise _Stop(FetchOutcome.TOO_MANY_REDIRECTS,
                     f"more than {self.policy.max_redirects} redirects")
 
@@ -413,6 +553,15 @@ def _looks_binary(body: bytes) -> bool:
     if head.startswith((b"\xff\xfe", b"\xfe\xff")):
         return False  # UTF-16 text has NULs
     return b"\x00" in head
+
+
+def _current_meter() -> WireMeter | None:
+    return current_meter()
+
+
+def _wire_cap(exc: BaseException) -> bool:
+    """Whether a read failed because our own wire meter passed a cap."""
+    return any(isinstance(e, WireCapExceeded) for e in _causes(exc))
 
 
 def _causes(exc: BaseException) -> Iterator[BaseException]:

@@ -21,6 +21,7 @@ class FetchOutcome(StrEnum):
     CONNECT_ERROR = "connect-error"  # refused, reset, unreachable
     TLS_ERROR = "tls-error"
     TIMEOUT = "timeout"  # the whole-fetch deadline passed
+    QUEUE_TIMEOUT = "queue-timeout"  # waited too long in the fetcher's own queues; never sent
     TOO_MANY_REDIRECTS = "too-many-redirects"
     ROBOTS_DISALLOWED = "robots-disallowed"
     HTTP_ERROR = "http-error"  # a 4xx/5xx status after any retries
@@ -50,10 +51,11 @@ class FetchResult:
     content_type: str | None = None
     charset: str | None = None
     text: str | None = None
-    bytes_read: int = 0
-    elapsed_ms: float = 0.0
+    bytes_read: int = 0  # every byte read off the socket for this fetch (all hops, headers)
+    elapsed_ms: float = 0.0  # from the fetch's first connection step (queueing not counted)
     redirects: tuple[Hop, ...] = field(default_factory=tuple)
     detail: str = ""  # a human-readable reason ("10.0.0.1 is private use (RFC 1918)")
+    queued_ms: float = 0.0  # time spent waiting for the fetcher's own concurrency and delay
 
     @property
     def ok(self) -> bool:
@@ -69,6 +71,7 @@ class FetchResult:
             "charset": self.charset,
             "bytes_read": self.bytes_read,
             "elapsed_ms": round(self.elapsed_ms, 1),
+            "queued_ms": round(self.queued_ms, 1),
             "redirects": [h.to_dict() for h in self.redirects],
             "detail": self.detail,
         }

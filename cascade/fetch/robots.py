@@ -1,20 +1,33 @@
-"""robots.txt rules per origin (RFC 9309), parsed with protego, cached for a day.
+"""robots.txt rules per origin (RFC 9309), parsed with protego, cached within bounds.
 
 RFC 9309 section 2.3.1: a 2xx answer is parsed; a 4xx answer (including 404) means no
 rules; a 5xx answer or a network failure means "assume complete disallow". Rules are
 matched by our user-agent product token.
+
+A hostile robots.txt must not stall the fetcher: the body is read within its own caps (the
+first ``robots_max_bytes`` of it, RFC 9309 section 2.5, the rest ignored); parsing runs in a
+worker thread of its own under a time limit, so the event loop keeps serving every other
+fetch; the cache is bounded by the estimated memory of the parsed rules, not by a count of
+origins. Only answers are cached: a load that timed out or broke off (which may be our own
+load, not the site's fault) is asked again next time; a 5xx is kept only briefly.
 """
 
 from __future__ import annotations
 
 import asyncio
 import time
+from collections import OrderedDict
 from collections.abc import Awaitable, Callable
-from dataclasses import dataclass
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
 
 from protego import Protego
 
-__all__ = ["RobotsCache", "RobotsRules", "interpret"]
+__all__ = ["RobotsCache", "RobotsRules", "interpret", "parse_rules"]
+
+#: Estimated bytes of memory per byte of parsed robots.txt text (protego's objects),
+#: measured on a 500 KiB file of Disallow lines (about 15x), rounded up.
+_MEMORY_PER_TEXT_BYTE = 16
 
 
 @dataclass(frozen=True)
@@ -23,6 +36,8 @@ class RobotsRules:
     parser: Protego | None
     detail: str
     fetched_at: float
+    cache: str = "keep"  # "keep" (the TTL), "brief" (the failure TTL) or "never"
+    size: int = field(default=256)  # estimated memory, for the cache's byte bound
 
     def allows(self, url: str, agent: str) -> bool:
         if self.kind == "allow-all":
@@ -36,23 +51,98 @@ class RobotsRules:
 RobotsLoader = Callable[[str], Awaitable[tuple[int | None, bytes, str]]]
 
 
-class RobotsCache:
-    """One ``RobotsRules`` per origin; concurrent lookups of an origin share one fetch."""
+def parse_rules(body: bytes) -> Protego:
+    """Parse robots.txt bytes (UTF-8, RFC 9309 section 2.3; bad bytes replaced)."""
+    return Protego.parse(body.decode("utf-8", errors="replace"))
 
-    def __init__(self, ttl_s: float, max_entries: int = 50_000,
-                 failure_ttl_s: float = 300.0) -> None:
+
+class RobotsCache:
+    """One ``RobotsRules`` per origin; concurrent lookups of an origin share one load.
+
+    ``max_bytes`` bounds the estimated memory of everything cached (least recently used
+    first out); ``parse_timeout_s`` bounds one parse, which runs in this cache's own worker
+    threads (``parse_workers``), never on the event loop.
+    """
+
+    def __init__(self, ttl_s: float, max_bytes: int = 64 << 20,
+                 failure_ttl_s: float = 60.0, parse_timeout_s: float = 2.0,
+                 parse_workers: int = 2) -> None:
         self.ttl_s = ttl_s
-        self.failure_ttl_s = failure_ttl_s  # an unreachable robots.txt is asked again sooner
-        self.max_entries = max_entries
-        self._rules: dict[str, RobotsRules] = {}
+        self.failure_ttl_s = failure_ttl_s
+        self.max_bytes = max_bytes
+        self.parse_timeout_s = parse_timeout_s
+        self._rules: OrderedDict[str, RobotsRules] = OrderedDict()
+        self._bytes = 0
         self._pending: dict[str, asyncio.Future[RobotsRules]] = {}
+        self._parse_workers = parse_workers
+        self._executor: ThreadPoolExecutor | None = None
+
+    @property
+    def cached_bytes(self) -> int:
+        """Estimated memory held by the cached rules."""
+        return self._bytes
+
+    def __len__(self) -> int:
+        return len(self._rules)
+
+    def close(self) -> None:
+        """Stop the parse threads (a parse still running finishes on its own)."""
+        if self._executor is not None:
+            self._executor.shutdown(wait=False, cancel_futures=True)
+            self._executor = None
+
+    def _fresh(self, origin: str) -> RobotsRules | None:
+        cached = self._rules.get(origin)
+        if cached is None:
+            return None
+        ttl = self.failure_ttl_s if cached.cache == "brief" else self.ttl_s
+        if time.monotonic() - cached.fetched_at < ttl:
+            self._rules.move_to_end(origin)
+            return cached
+        self._drop(origin)
+        return None
+
+    def _drop(self, origin: str) -> None:
+        old = self._rules.pop(origin, None)
+        if old is not None:
+            self._bytes -= old.size
+
+    def _store(self, origin: str, rules: RobotsRules) -> None:
+        if rules.cache == "never" or rules.size > self.max_bytes:
+            return
+        self._drop(origin)
+        self._rules[origin] = rules
+        self._bytes += rules.size
+        while self._bytes > self.max_bytes and self._rules:
+            _, old = self._rules.popitem(last=False)
+            self._bytes -= old.size
+
+    async def _parse(self, body: bytes) -> Protego:
+        if self._executor is None:
+            self._executor = ThreadPoolExecutor(self._parse_workers,
+                                                thread_name_prefix="cascade-robots")
+        loop = asyncio.get_running_loop()
+        return await asyncio.wait_for(loop.run_in_executor(self._executor, parse_rules, body),
+                                      self.parse_timeout_s)
+
+    async def interpret(self, status: int | None, body: bytes, detail: str) -> RobotsRules:
+        """``interpret``, with the parse off the event loop and under its time limit."""
+        if status is None or not 200 <= status < 300:
+            return interpret(status, body, detail)
+        now = time.monotonic()
+        try:
+            parser = await self._parse(body)
+        except TimeoutError:
+            return RobotsRules("disallow-all", None,
+                               f"robots.txt parse took over {self.parse_timeout_s} s",
+                               now, cache="never")
+        return RobotsRules("parsed", parser, "robots.txt parsed", now,
+                           size=256 + _MEMORY_PER_TEXT_BYTE * len(body))
 
     async def rules(self, origin: str, load: RobotsLoader) -> RobotsRules:
-        cached = self._rules.get(origin)
+        cached = self._fresh(origin)
         if cached is not None:
-            ttl = self.failure_ttl_s if cached.kind == "disallow-all" else self.ttl_s
-            if time.monotonic() - cached.fetched_at < ttl:
-                return cached
+            return cached
         pending = self._pending.get(origin)
         if pending is not None:
             try:
@@ -63,15 +153,13 @@ class RobotsCache:
                     raise  # we were cancelled ourselves
                 # the loading fetch was cancelled (its own deadline): robots.txt unreachable
                 return RobotsRules("disallow-all", None, "robots.txt load was cut off",
-                                   time.monotonic())
+                                   time.monotonic(), cache="never")
         future: asyncio.Future[RobotsRules] = asyncio.get_running_loop().create_future()
         self._pending[origin] = future
         try:
             status, body, detail = await load(origin)
-            rules = interpret(status, body, detail)
-            if len(self._rules) >= self.max_entries:
-                self._rules.pop(next(iter(self._rules)))
-            self._rules[origin] = rules
+            rules = await self.interpret(status, body, detail)
+            self._store(origin, rules)
             future.set_result(rules)
             return rules
         except BaseException as exc:
@@ -83,12 +171,18 @@ class RobotsCache:
 
 
 def interpret(status: int | None, body: bytes, detail: str) -> RobotsRules:
+    """Rules from a robots.txt answer (parsed here, on the caller's thread)."""
     now = time.monotonic()
-    if status is None or status >= 500:
-        return RobotsRules("disallow-all", None, f"robots.txt unreachable ({detail})", now)
+    if status is None:  # timed out, broke off, refused: maybe our fault; ask again next time
+        return RobotsRules("disallow-all", None, f"robots.txt unreachable ({detail})", now,
+                           cache="never")
+    if status >= 500:
+        return RobotsRules("disallow-all", None, f"robots.txt unreachable ({detail})", now,
+                           cache="brief")
     if 400 <= status < 500:
         return RobotsRules("allow-all", None, f"robots.txt status {status}: no rules", now)
     if 200 <= status < 300:
-        text = body.decode("utf-8", errors="replace")
-        return RobotsRules("parsed", Protego.parse(text), "robots.txt parsed", now)
-    return RobotsRules("disallow-all", None, f"robots.txt status {status}", now)
+        return RobotsRules("parsed", parse_rules(body), "robots.txt parsed", now,
+                           size=256 + _MEMORY_PER_TEXT_BYTE * len(body))
+    return RobotsRules("disallow-all", None, f"robots.txt status {status}", now,
+                       cache="brief")

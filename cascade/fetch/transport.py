@@ -14,6 +14,11 @@ whose network backend is ``PinnedBackend`` around the public ``httpcore.AnyIOBac
 the matching public httpx exceptions, the httpcore one kept as ``__cause__``, as
 ``httpx.AsyncHTTPTransport`` does. Written against httpx 0.27-0.29 and httpcore 1.0;
 ``tests/test_fetch_hostile.py`` proves the pin holds.
+
+Every stream the backend opens counts its reads (``wire.CountingStream``), so the fetcher's
+byte caps hold for what really crosses the socket. Connections are pooled per checked
+address: a keep-alive connection is reused only for a request pinned to the same address,
+so an origin whose DNS answer changed between two fetches never rides on the old socket.
 """
 
 from __future__ import annotations
@@ -22,13 +27,14 @@ import contextlib
 import contextvars
 import ssl
 import typing
+from collections import OrderedDict
 from collections.abc import AsyncIterator, Iterator
 from dataclasses import dataclass
 
 import httpcore
 import httpx
 
-__all__ = ["Pin", "PinnedBackend", "PinnedTransport", "pinned", "unpin"]
+from cascade.fetch.wire import CountingStream
 
 __all__ = ["Pin", "PinnedBackend", "PinnedTransport", "pinned", "unpin"]
 
@@ -94,9 +100,10 @@ class PinnedBackend(httpcore.AsyncNetworkBackend):
             raise httpcore.ConnectError(f"refused: no checked address for {host}:{port}")
         if len(self.connects) < 10_000:
             self.connects.append((host, port, pin.address))
-        return await self._backend.connect_tcp(pin.address, port, timeout=timeout,
-                                               local_address=local_address,
-                                               socket_options=socket_options)
+        stream = await self._backend.connect_tcp(pin.address, port, timeout=timeout,
+                                                 local_address=local_address,
+                                                 socket_options=socket_options)
+        return CountingStream(stream)
 
     async def connect_unix_socket(self, path: str, timeout: float | None = None,
                                   socket_options: typing.Any = None
@@ -108,10 +115,13 @@ class PinnedBackend(httpcore.AsyncNetworkBackend):
 
 
 class _ResponseStream(httpx.AsyncByteStream):
-    """The body of an httpcore response, with httpcore errors raised as httpx ones."""
+    """The body of an httpcore response, with httpcore errors raised as httpx ones;
+    ``on_close`` runs once when it is closed."""
 
-    def __init__(self, stream: typing.AsyncIterable[bytes]) -> None:
+    def __init__(self, stream: typing.AsyncIterable[bytes],
+                 on_close: typing.Callable[[], None] | None = None) -> None:
         self._stream = stream
+        self._on_close = on_close
 
     async def __aiter__(self) -> AsyncIterator[bytes]:
         with _httpx_errors():
@@ -120,30 +130,61 @@ class _ResponseStream(httpx.AsyncByteStream):
 
     async def aclose(self) -> None:
         close = getattr(self._stream, "aclose", None)
-        if close is not None:
-            with _httpx_errors():
-                await close()
+        try:
+            if close is not None:
+                with _httpx_errors():
+                    await close()
+        finally:
+            if self._on_close is not None:
+                self._on_close()
+                self._on_close = None
 
 
 class PinnedTransport(httpx.AsyncBaseTransport):
-    """An httpx transport whose connection pool connects through ``PinnedBackend``;
+    """An httpx transport whose connection pools connect through ``PinnedBackend``, one
+    pool per checked address (at most ``max_pools``, least recently used closed first);
     no proxy, no environment settings, HTTP/1.1. ``backend.connects`` records each
     connect, for tests."""
 
-    def __init__(self, limits: httpx.Limits, ssl_context: ssl.SSLContext | None = None) -> None:
+    def __init__(self, limits: httpx.Limits, ssl_context: ssl.SSLContext | None = None,
+                 max_pools: int = 256) -> None:
+        from cascade.fetch.tls import sandbox_ssl_context
+
         self.backend = PinnedBackend()
-        self._pool = httpcore.AsyncConnectionPool(
-            ssl_context=ssl_context or httpx.create_ssl_context(trust_env=False),
-            max_connections=limits.max_connections,
-            max_keepalive_connections=limits.max_keepalive_connections,
-            keepalive_expiry=limits.keepalive_expiry,
-            http1=True,
-            http2=False,
-            network_backend=self.backend,
-        )
+        self._limits = limits
+        self._ssl_context = ssl_context or sandbox_ssl_context()
+        self._max_pools = max_pools
+        self._pools: OrderedDict[str, httpcore.AsyncConnectionPool] = OrderedDict()
+        self._in_use: dict[str, int] = {}
+
+    def _pool_for(self, address: str) -> httpcore.AsyncConnectionPool:
+        pool = self._pools.get(address)
+        if pool is None:
+            pool = httpcore.AsyncConnectionPool(
+                ssl_context=self._ssl_context,
+                max_connections=self._limits.max_connections,
+                max_keepalive_connections=self._limits.max_keepalive_connections,
+                keepalive_expiry=self._limits.keepalive_expiry,
+                http1=True,
+                http2=False,
+                network_backend=self.backend,
+            )
+            self._pools[address] = pool
+        self._pools.move_to_end(address)
+        return pool
+
+    async def _evict(self) -> None:
+        """Close the least recently used idle pools beyond ``max_pools``."""
+        for address in list(self._pools):
+            if len(self._pools) <= self._max_pools:
+                return
+            if self._in_use.get(address, 0) == 0:
+                await self._pools.pop(address).aclose()
 
     async def handle_async_request(self, request: httpx.Request) -> httpx.Response:
-        """Send ``request`` over the pool; the response body is left to stream."""
+        """Send ``request`` over the pinned address's pool; the body is left to stream."""
+        pin = _PIN.get()
+        address = pin.address if pin is not None else ""
         core_request = httpcore.Request(
             method=request.method,
             url=httpcore.URL(scheme=request.url.raw_scheme, host=request.url.raw_host,
@@ -152,18 +193,35 @@ class PinnedTransport(httpx.AsyncBaseTransport):
             content=request.stream,  # type: ignore[arg-type]
             extensions=request.extensions,
         )
-        with _httpx_errors():
-            core_response = await self._pool.handle_async_request(core_request)
+        pool = self._pool_for(address)
+        self._in_use[address] = self._in_use.get(address, 0) + 1
+        try:
+            with _httpx_errors():
+                core_response = await pool.handle_async_request(core_request)
+        except BaseException:
+            self._release(address)
+            raise
+        await self._evict()
         return httpx.Response(
             status_code=core_response.status,
             headers=core_response.headers,
-            stream=_ResponseStream(core_response.stream),  # type: ignore[arg-type]
+            stream=_ResponseStream(core_response.stream,  # type: ignore[arg-type]
+                                   lambda: self._release(address)),
             extensions=core_response.extensions,
             request=request,
         )
 
+    def _release(self, address: str) -> None:
+        left = self._in_use.get(address, 0) - 1
+        if left > 0:
+            self._in_use[address] = left
+        else:
+            self._in_use.pop(address, None)
+
     async def aclose(self) -> None:
-        await self._pool.aclose()
+        pools, self._pools = list(self._pools.values()), OrderedDict()
+        for pool in pools:
+            await pool.aclose()
 
 
 def pinned(host: str, port: int, address: str) -> contextvars.Token:

@@ -24,8 +24,6 @@ from cascade.scenario.pages import render_page
 from cascade.scenario.telemetry import TelemetryRecord
 from cascade.urls import normalize
 
-__all__ = ["FarmRequest", "FarmStats", "MAX_REQUEST_HEAD", "Reply", "SiteFarm"]
-
 __all__ = ["FarmRequest", "FarmStats", "Reply", "Route", "SiteFarm"]
 
 MAX_REQUEST_HEAD = 16 << 10
