@@ -27,6 +27,7 @@ from cascade.errors import (
     InputFormatError,
     InvalidURL,
     ModelFileError,
+    StoreError,
     TaxonomyError,
     UsageError,
 )
@@ -44,6 +45,7 @@ EXIT_CODES: tuple[tuple[type[BaseException], int], ...] = (
     (TaxonomyError, EXIT_FILE),
     (InputFormatError, EXIT_FILE),
     (DataError, EXIT_FILE),
+    (StoreError, EXIT_FILE),
     (FileNotFoundError, EXIT_FILE),
     (IsADirectoryError, EXIT_FILE),
     (PermissionError, EXIT_FILE),
@@ -445,6 +447,71 @@ def cmd_report(args: argparse.Namespace) -> int:
                    stats, args.quiet)
 
 
+def cmd_night(args: argparse.Namespace) -> int:
+    from cascade.batch import NightOptions, run_night
+    from cascade.bundle import ModelBundle
+    from cascade.fetch import Fetcher
+    from cascade.store import VerdictStore
+
+    log = Path(args.log)
+    if not log.is_file():
+        raise InputFormatError(f"{log}: no such log file")
+    bundle = ModelBundle.load(args.model)
+    policy, resolver = _fetch_setup(args)
+    options = NightOptions(budget=_budget(args), fetch_below=args.fetch_below,
+                           review_size=args.review_size, use_history=not args.no_history,
+                           progress=False if args.quiet else None)
+    client = None
+    if args.engine == "dask" and args.dask_scheduler:
+        from distributed import Client
+
+        client = Client(args.dask_scheduler)
+    with VerdictStore.open(args.store) as store:
+        result = run_night(bundle, store, log, args.out, options=options,
+                           fetcher_factory=lambda: Fetcher(policy, resolver),
+                           run_id=args.run_id, log_format=args.input_format,
+                           say=None if args.quiet else lambda m: _eprint(f"night: {m}"),
+                           engine=args.engine, dask_client=client)
+    rep = result.report
+    summary = {"run_id": result.run_id, "resumed": result.resumed, "decided": rep["decided"],
+               "spent": rep["spent"], "fetch_outcomes": rep["fetch_outcomes"],
+               "coverage_after": rep["coverage_after"]["share"],
+               "outputs": {k: str(v) for k, v in result.paths.items()}}
+    stats = ReadStats(lines=rep["input"]["lines"], records=rep["input"]["records"],
+                      bad=rep["input"]["bad"])
+    return _finish(summary, stats, args.quiet)
+
+
+def cmd_store(args: argparse.Namespace) -> int:
+    from cascade.store import VerdictStore
+
+    readonly = args.action in ("export", "training", "stats")
+    with VerdictStore.open(args.store, readonly=readonly, create=not readonly) as store:
+        if args.action == "export":
+            n = store.export(args.file or "-")
+            result: dict[str, Any] = {"exported": n}
+        elif args.action == "import":
+            if not args.file:
+                raise UsageError("store import needs --file")
+            result = store.import_verdicts(args.file)
+        elif args.action == "training":
+            if not args.file:
+                raise UsageError("store training needs --file (the labelled CSV to write)")
+            result = {"rows": store.export_training(args.file, args.min_page_confidence)}
+        elif args.action == "label":
+            from cascade.urls import normalize
+
+            if not (args.url and args.category):
+                raise UsageError("store label needs --url and --category")
+            store.label(normalize(args.url).url, args.category, analyst=args.analyst)
+            result = {"labelled": normalize(args.url).url}
+        else:
+            result = store.counts()
+    if not args.quiet:
+        _eprint(json.dumps(result))
+    return EXIT_OK
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     from cascade.demo import run_demo
 
@@ -614,6 +681,46 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--budget", type=float, default=0.3,
                    help="share of the night's URLs the plan may fetch (default 0.3)")
     p.set_defaults(func=cmd_demo)
+
+    p = command("night", "The nightly job: read a day's lookup log, refine the uncertain URLs "
+                         "within a fetch budget, write verdicts to the store, a review queue "
+                         "and a report. Killed, the same command resumes it.")
+    p.add_argument("--log", "-l", required=True,
+                   help="the lookup log (plain, CSV/TSV, JSON Lines; .gz ok)")
+    p.add_argument("--input-format", choices=["txt", "csv", "tsv", "jsonl"])
+    p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
+    p.add_argument("--store", "-s", required=True, help="verdict store (a .sqlite file)")
+    p.add_argument("--out", required=True, help="folder for the changes, review queue, report")
+    p.add_argument("--budget", "-b", required=True,
+                   help="most fetches: a number (500) or a share of the URLs (10%%)")
+    p.add_argument("--budget-bytes", help="also cap bytes (e.g. 500MB, 2GiB)")
+    p.add_argument("--budget-seconds", help="also cap summed fetch time, in seconds")
+    p.add_argument("--fetch-below", type=float, default=0.8,
+                   help="a URL verdict under this confidence wants a fetch (default 0.8)")
+    p.add_argument("--review-size", type=int, default=500,
+                   help="URLs in the analyst review queue (default 500)")
+    p.add_argument("--no-history", action="store_true",
+                   help="plan without the store's fetch costs and domain history")
+    p.add_argument("--run-id", help="default: from the log, the model and the budget, so the "
+                                    "same command resumes the same night")
+    p.add_argument("--engine", choices=["local", "dask"], default="local",
+                   help="fetch here, or on a Dask cluster (pip install -e '.[dask]')")
+    p.add_argument("--dask-scheduler", help="address of an existing Dask scheduler "
+                                            "(default: a local cluster of 2 processes)")
+    _add_fetch_options(p)
+    p.set_defaults(func=cmd_night)
+
+    p = command("store", "Look after the verdict store: export, import, training file, an "
+                         "analyst's label, counts.")
+    p.add_argument("action", choices=["export", "import", "training", "label", "stats"])
+    p.add_argument("--store", "-s", required=True, help="verdict store (a .sqlite file)")
+    p.add_argument("--file", "-f", help="file to export to / import from (.jsonl or .csv)")
+    p.add_argument("--min-page-confidence", type=float,
+                   help="training: also page verdicts at least this confident")
+    p.add_argument("--url", help="label: the URL")
+    p.add_argument("--category", help="label: its category")
+    p.add_argument("--analyst", default="analyst", help="label: who labels")
+    p.set_defaults(func=cmd_store)
     return parser
 
 

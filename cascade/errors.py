@@ -13,6 +13,7 @@ __all__ = [
     "InvalidURL",
     "ModelFileError",
     "NotFittedError",
+    "StoreError",
     "TaxonomyError",
     "UsageError",
 ]
@@ -55,3 +56,8 @@ class UsageError(CascadeError, ValueError):
 class DataError(CascadeError, ValueError):
     """The input is readable but cannot serve the request: no usable rows, labels the model
     does not know, too few rows to fit."""
+
+
+class StoreError(CascadeError):
+    """The verdict store file cannot be used: not a cascade store, another schema version,
+    or a path that is not a ``.sqlite`` file."""
