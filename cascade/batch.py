@@ -146,6 +146,28 @@ def run_night(
     registered domain, verdicts merged into the store here."""
     opts = options or NightOptions()
     tell = say or (lambda _m: None)
+    if engine not in ("local", "dask"):
+        raise ValueError(f"engine must be 'local' or 'dask', not {engine!r}")
+    own_client = None
+    if engine == "dask" and dask_client is None:
+        from cascade.batch_dask import local_client
+
+        dask_client = own_client = local_client()
+    try:
+        return _run_night(bundle, store, log, out_dir, opts, fetcher_factory, fetch_target,
+                          run_id, log_format, tell, engine, dask_client)
+    finally:
+        if own_client is not None:
+            cluster = own_client.cluster
+            own_client.close()
+            cluster.close()
+
+
+def _run_night(bundle: ModelBundle, store: VerdictStore, log: str | Path, out_dir: str | Path,
+               opts: NightOptions, fetcher_factory: Callable[[], Any] | None,
+               fetch_target: Callable[[str], str] | None, run_id: str | None,
+               log_format: str | None, tell: Callable[[str], None], engine: str,
+               dask_client: Any) -> NightResult:
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     log = Path(log)
@@ -174,7 +196,12 @@ def run_night(
         work = [u for u in urls if u not in fresh]
     keys = [entries[u].key for u in work]
     tell(f"{len(work)} URLs to decide ({len(urls) - len(work)} fresh in the store)")
-    proba = _score(bundle, keys)
+    if engine == "dask":
+        from cascade.batch_dask import score_on_cluster
+
+        proba = score_on_cluster(bundle.url_model, [k.url for k in keys], dask_client)
+    else:
+        proba = _score(bundle, keys)
     domains = [k.registered_domain or k.host for k in keys]
     history = _history(store, bundle.classes) if opts.use_history else None
     costs = FetchCosts.from_history(store.fetch_history()) if opts.use_history and \

@@ -23,7 +23,8 @@ import numpy as np
 
 from cascade.budget import Budget
 
-__all__ = ["fetch_on_cluster", "fetch_partition", "local_client", "partition_by_domain"]
+__all__ = ["fetch_on_cluster", "fetch_partition", "local_client", "partition_by_domain",
+           "score_on_cluster"]
 
 
 def partition_by_domain(urls: Sequence[str], domains: Mapping[str, str], parts: int
@@ -63,6 +64,22 @@ def fetch_partition(targets: list[str], budget: dict[str, Any],
     return asyncio.run(go())
 
 
+def _score_part(url_model: Any, urls: list[str]) -> np.ndarray:
+    return url_model.predict_proba(urls)
+
+
+def score_on_cluster(url_model: Any, urls: Sequence[str], client: Any,
+                     chunk: int = 20_000) -> np.ndarray:
+    """The URL model's probabilities, computed on the workers in chunks (the model is sent
+    to each worker once)."""
+    if not urls:
+        return np.zeros((0, len(url_model.classes_)))
+    model = client.scatter(url_model, broadcast=True)
+    parts = [list(urls[i:i + chunk]) for i in range(0, len(urls), chunk)]
+    futures = [client.submit(_score_part, model, part, pure=False) for part in parts]
+    return np.vstack(client.gather(futures))
+
+
 def local_client(workers: int = 2) -> Any:
     """A ``distributed.Client`` on a new ``LocalCluster`` of ``workers`` processes."""
     try:
@@ -87,49 +104,41 @@ def fetch_on_cluster(bundle: Any, store: Any, run_id: str, to_fetch: list[str],
     """Fetch ``to_fetch`` on the cluster, partitioned by domain; commit as parts finish."""
     from distributed import as_completed
 
-    own_client = client is None
-    client = client or local_client()
-    try:
-        workers = max(1, len(client.scheduler_info().get("workers", {})))
-        dom = {u: domains[row_of[u]] for u in to_fetch}
-        parts = partition_by_domain(to_fetch, dom, parts=workers * 4)
-        budget = opts.budget
-        left_count = budget.count_limit(n_offered) - int(spent["fetches"])
-        left_bytes = None if budget.max_bytes is None else budget.max_bytes - spent["bytes"]
-        left_secs = None if budget.max_seconds is None else \
-            budget.max_seconds - spent["seconds"]
-        total = sum(len(p) for p in parts) or 1
-        futures = {}
-        given = 0
-        for part in parts:
-            count = min(len(part), max(0, left_count - given))
-            given += count
-            share = {"max_fetches": count,
-                     "max_bytes": None if left_bytes is None else
-                     max(0, int(left_bytes * len(part) / total)),
-                     "max_seconds": None if left_secs is None else
-                     max(0.0, left_secs * len(part) / total)}
-            targets = [fetch_target(u) if fetch_target else u for u in part]
-            fut = client.submit(fetch_partition, targets, share, fetcher_factory, pure=False)
-            futures[fut] = part
-        tell(f"dask: {len(parts)} partitions by domain on {workers} workers")
-        for fut in as_completed(list(futures)):
-            part = futures[fut]
-            back = {(fetch_target(u) if fetch_target else u): u for u in part}
-            rows = fut.result()
-            results = {back[r["target"]]: r["result"] for r in rows if r["result"] is not None}
-            plan_reasons = {back[r["target"]]: (reasons[back[r["target"]]]
-                                                if r["result"] is not None else r["reason"])
-                            for r in rows}
-            urls = [back[r["target"]] for r in rows]
-            idx = [row_of[u] for u in urls]
-            verdicts = bundle.verdicts([keys[i] for i in idx], url_proba=proba[idx],
-                                       fetches=results, plan=plan_reasons,
-                                       fetch_below=opts.fetch_below, top_k=opts.top_k)
-            commit(store, run_id, verdicts, results, domains, row_of, urls,
-                   list(results.values()), {r.url: u for u, r in results.items()})
-    finally:
-        if own_client:
-            cluster = client.cluster
-            client.close()
-            cluster.close()
+    workers = max(1, len(client.scheduler_info().get("workers", {})))
+    dom = {u: domains[row_of[u]] for u in to_fetch}
+    parts = partition_by_domain(to_fetch, dom, parts=workers * 4)
+    budget = opts.budget
+    left_count = budget.count_limit(n_offered) - int(spent["fetches"])
+    left_bytes = None if budget.max_bytes is None else budget.max_bytes - spent["bytes"]
+    left_secs = None if budget.max_seconds is None else \
+        budget.max_seconds - spent["seconds"]
+    total = sum(len(p) for p in parts) or 1
+    futures = {}
+    given = 0
+    for part in parts:
+        count = min(len(part), max(0, left_count - given))
+        given += count
+        share = {"max_fetches": count,
+                 "max_bytes": None if left_bytes is None else
+                 max(0, int(left_bytes * len(part) / total)),
+                 "max_seconds": None if left_secs is None else
+                 max(0.0, left_secs * len(part) / total)}
+        targets = [fetch_target(u) if fetch_target else u for u in part]
+        fut = client.submit(fetch_partition, targets, share, fetcher_factory, pure=False)
+        futures[fut] = part
+    tell(f"dask: {len(parts)} partitions by domain on {workers} workers")
+    for fut in as_completed(list(futures)):
+        part = futures[fut]
+        back = {(fetch_target(u) if fetch_target else u): u for u in part}
+        rows = fut.result()
+        results = {back[r["target"]]: r["result"] for r in rows if r["result"] is not None}
+        plan_reasons = {back[r["target"]]: (reasons[back[r["target"]]]
+                                            if r["result"] is not None else r["reason"])
+                        for r in rows}
+        urls = [back[r["target"]] for r in rows]
+        idx = [row_of[u] for u in urls]
+        verdicts = bundle.verdicts([keys[i] for i in idx], url_proba=proba[idx],
+                                   fetches=results, plan=plan_reasons,
+                                   fetch_below=opts.fetch_below, top_k=opts.top_k)
+        commit(store, run_id, verdicts, results, domains, row_of, urls,
+               list(results.values()), {r.url: u for u, r in results.items()})

@@ -130,6 +130,7 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
                                 "weighted by": "lookup counts",
                                 "planner": bundle.planner_name})
     paths = write_report(rep, out / "budget-report")
+    night = _night_job(bundle, records, test, budget_fraction, out, quiet)
 
     def acc(p: np.ndarray, weights: np.ndarray | None = None) -> float:
         right = (p.argmax(axis=1) == y).astype(float)
@@ -149,6 +150,9 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
         "budget_for_90pct_of_fetch_all_gain": rep["budget_for_gain_share"]["planner"]["90%"],
         "fetch_outcomes": fetch_report["outcomes"],
         "plan_spent": fetch_report["plan_spent"],
+        "night_store": str(out / "store.sqlite"),
+        "night_coverage_after": night["coverage_after"]["share"],
+        "night_review_queue": night.get("review_queue", 0),
         "train_seconds": round(train_s, 1),
         "seconds": round(time.perf_counter() - started, 1),
     }
@@ -158,6 +162,7 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
               "taxonomy": taxonomy.name, "model_version": bundle.version,
               "headline": headline, "metrics": metrics, "fetch": fetch_report,
               "budget_table": rep["budget_table"], "stacking": bundle.report,
+              "night": night,
               "explain_examples": [model.explain(k, top=5, n_classes=1).to_dict()
                                    for k in test_keys[:5]]}
     (out / "report.json").write_text(json.dumps(report, indent=2, ensure_ascii=False) + "\n",
@@ -165,6 +170,50 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
     (out / "summary.md").write_text(_summary_markdown(report), encoding="utf-8")
     _say(quiet, f"wrote verdicts.jsonl, report.json, summary.md, {paths['html']}")
     return report
+
+
+def _night_job(bundle: Any, records: list, test: Any, budget_fraction: float, out: Path,
+               quiet: bool) -> dict[str, Any]:
+    """The night as a team runs it: the held-out URLs' lookups as the day's log, the nightly
+    job (``cascade night``) with the same budget into the verdict store ``store.sqlite``,
+    fetching from the loopback site farm; its changes, review queue and report in
+    ``night/``."""
+    import csv
+
+    from cascade.batch import NightOptions, run_night
+    from cascade.budget import Budget
+    from cascade.fetch import Fetcher, FetchPolicy
+    from cascade.scenario.site_farm import SiteFarm
+    from cascade.store import VerdictStore
+
+    log = out / "night-log.csv"
+    with log.open("w", newline="", encoding="utf-8") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(["url", "count"])
+        for i in test:
+            writer.writerow([records[i].url, records[i].count])
+    store_path = out / "store.sqlite"
+    for stale in (store_path, store_path.with_name(store_path.name + "-wal"),
+                  store_path.with_name(store_path.name + "-shm")):
+        stale.unlink(missing_ok=True)  # the demo starts a fresh store each time
+    with SiteFarm(records) as farm, VerdictStore.open(store_path) as store:
+        policy = FetchPolicy(ports=(farm.port,), allow_networks=("127.0.0.1/32",),
+                             per_host_delay_s=0.0, deadline_s=5.0)
+
+        def target(url: str) -> str:
+            key = normalize(url)
+            return f"http://{key.host}:{farm.port}{key.path}" + (
+                f"?{key.query}" if key.query else "")
+
+        result = run_night(bundle, store, log, out / "night",
+                           options=NightOptions(budget=Budget(max_fraction=budget_fraction),
+                                                progress=False if quiet else None),
+                           fetcher_factory=lambda: Fetcher(policy, farm.resolver()),
+                           fetch_target=target,
+                           say=None if quiet else lambda m: _say(False, f"night: {m}"))
+    _say(quiet, f"night job {result.run_id}: store.sqlite, night/review-queue.jsonl, "
+                "night/night-report.json")
+    return result.report
 
 
 def _fetch_from_farm(records: list, plan_urls: list[str], all_urls: list[str], budget: Any,
@@ -264,6 +313,14 @@ def _summary_markdown(report: dict[str, Any]) -> str:
         lines.append(f"| {row['budget']:.0%} | " + " | ".join(
             f"{row[s]['accuracy']:.4f}" for s in ("planner", "lowest-confidence", "random",
                                                    "oracle")) + " |")
+    night = report.get("night")
+    if night:
+        lines += ["", "## The nightly job (store.sqlite, night/)", "",
+                  f"Run {night['run_id']}: {night['decided']} URLs decided, "
+                  f"{night['spent']['fetches']} fetches; lookups with a trusted verdict "
+                  f"{night['coverage_before']['share']:.1%} before, "
+                  f"{night['coverage_after']['share']:.1%} after; "
+                  f"{night.get('review_queue', 0)} URLs in night/review-queue.jsonl."]
     lines += ["", "Plots and more figures: budget-report/report.html.", "",
               "## URL model accuracy by what the URL string says", "",
               "| URL signal | rows | accuracy |", "| --- | --- | --- |"]

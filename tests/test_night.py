@@ -269,3 +269,25 @@ def test_killed_night_resumes_without_loss_or_duplicates(world, tmp_path: Path,
     assert v_crash == v_clean  # no verdict lost, none different
     assert f_crash == f_clean  # every planned page fetched exactly once, none twice
     assert len(f_crash) == len(set(f_crash))
+
+
+def test_the_dask_engine_gives_the_same_night_on_a_local_cluster(world, tmp_path: Path) -> None:
+    """A real LocalCluster of 2 worker processes: the same verdicts as the local engine."""
+    distributed = pytest.importorskip("distributed")
+    root, records, hosts = world
+    local = _night(world, tmp_path / "local.sqlite", tmp_path / "l")
+    with SiteFarm(records) as farm, VerdictStore.open(tmp_path / "dask.sqlite") as store, \
+            distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                     dashboard_address=None) as cluster, \
+            distributed.Client(cluster) as client:
+        remote = run_night(ModelBundle.load(root / "model"), store, root / "log.csv",
+                           tmp_path / "d",
+                           options=NightOptions(budget=Budget(max_fraction=0.5),
+                                                progress=False),
+                           fetcher_factory=nh.farm_fetcher_factory(farm.port, hosts),
+                           fetch_target=nh.farm_target(farm.port), engine="dask",
+                           dask_client=client)
+    assert remote.report["spent"]["fetches"] == local.report["spent"]["fetches"]
+    v_local, f_local, _ = _snapshot(tmp_path / "local.sqlite")
+    v_dask, f_dask, _ = _snapshot(tmp_path / "dask.sqlite")
+    assert v_dask == v_local and f_dask == f_local
