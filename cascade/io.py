@@ -314,14 +314,42 @@ def _make_record(
     parsed = _parse_count(count)
     if isinstance(parsed, str):
         return parsed
+    when = parse_seen_at(seen_at)
+    if isinstance(when, ValueError):
+        return str(when)
     return InputRecord(
         line_no=line_no,
         url=url,
         label=_optional_text(label),
         count=parsed,
-        seen_at=_optional_text(seen_at),
+        seen_at=when,
         extra=extra or {},
     )
+
+
+_EPOCH = re.compile(r"^[+-]?\d{9,11}(?:\.\d+)?$")
+
+
+def parse_seen_at(value: Any) -> str | None | ValueError:
+    """A ``seen_at`` value as ISO 8601 UTC (``2026-10-09T20:20:40Z``): ISO 8601 dates and
+    times (RFC 3339 profile; an offset is converted to UTC, no offset means UTC) or epoch
+    seconds; empty is None; anything else (``yesterday``) is returned as a ``ValueError``
+    so the line is counted as bad rather than sorted as text."""
+    import datetime as dt
+
+    text = _optional_text(value)
+    if text is None:
+        return None
+    try:
+        if _EPOCH.match(text):
+            when = dt.datetime.fromtimestamp(float(text), tz=dt.UTC)
+        else:
+            when = dt.datetime.fromisoformat(text.replace("z", "Z"))
+            if when.tzinfo is None:
+                when = when.replace(tzinfo=dt.UTC)
+    except (ValueError, OverflowError, OSError):
+        return ValueError(f"seen_at {text[:40]!r} is not an ISO 8601 time or epoch seconds")
+    return when.astimezone(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 # --------------------------------------------------------------------------- format detection

@@ -66,7 +66,7 @@ def test_csv_and_tsv(tmp_path: Path, gz: bool, suffix: str, delim: str) -> None:
     reader = read_records(path)
     assert reader.format == suffix[1:]
     records = list(reader)
-    assert records[0] == InputRecord(2, URLS[0], "news", 3, "2024-01-02", {"source": "feed"})
+    assert records[0] == InputRecord(2, URLS[0], "news", 3, "2024-01-02T00:00:00Z", {"source": "feed"})
     assert records[1] == InputRecord(3, URLS[1], None, 2, None, {"source": "crawl"})
     assert records[2].count == 1 and records[2].label == "shop"
 
@@ -81,7 +81,7 @@ def test_jsonl(tmp_path: Path, gz: bool, suffix: str) -> None:
     ]
     path = _write(tmp_path / ("in" + suffix + (".gz" if gz else "")), "\n".join(lines), gz)
     records = list(read_records(path))
-    assert records[0] == InputRecord(1, URLS[0], "news", 4, "2024-01-01", {})
+    assert records[0] == InputRecord(1, URLS[0], "news", 4, "2024-01-01T00:00:00Z", {})
     assert records[1] == InputRecord(2, URLS[1])
     assert records[2].count == 5
     assert records[2].extra == {"site": "c", "tags": '["x", "ü"]'}
@@ -565,3 +565,27 @@ def test_arbitrary_bytes_never_raise(data: bytes, fmt: str) -> None:
         return
     assert stats.records == len(records)
     assert all("\ufffd" not in r.url for r in records)
+
+
+@pytest.mark.parametrize("text, expected", [
+    # RFC 3339 section 5.6 (an ISO 8601 profile): "Z" and numeric offsets; converted to UTC
+    ("2026-10-09T20:20:40Z", "2026-10-09T20:20:40Z"),
+    ("2026-10-09T22:20:40+02:00", "2026-10-09T20:20:40Z"),
+    ("2026-10-09", "2026-10-09T00:00:00Z"),
+    # epoch seconds: 1760041240 is 2025-10-09T20:20:40Z (checked with datetime.fromtimestamp)
+    ("1760041240", "2025-10-09T20:20:40Z"),
+])
+def test_seen_at_is_parsed_to_one_utc_form(text: str, expected: str) -> None:
+    from cascade.io import parse_seen_at
+
+    assert parse_seen_at(text) == expected
+
+
+def test_a_seen_at_that_is_not_a_time_is_a_bad_line(tmp_path) -> None:
+    path = tmp_path / "times.csv"
+    path.write_text("url,seen_at\nhttp://a.example/,2026-10-09\nhttp://b.example/,yesterday\n"
+                    "http://c.example/,2026-13-01\n")
+    stats = ReadStats()
+    records = list(read_records(path, stats=stats))
+    assert [r.url for r in records] == ["http://a.example/"]
+    assert stats.bad == 2 and "seen_at" in stats.samples[0].reason

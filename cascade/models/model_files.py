@@ -39,6 +39,12 @@ META_FILE = "model.json"
 WEIGHTS_FILE = "weights.npz"
 
 
+def _umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def _sha256_file(path: Path) -> str:
     digest = hashlib.sha256()
     with path.open("rb") as fh:
@@ -60,6 +66,9 @@ def save_model_dir(
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.", dir=target.parent))
+    # mkdtemp makes the folder 0700; a model directory gets the mode the umask gives any
+    # new folder, so a service running as another user can read it where policy allows
+    staging.chmod(0o777 & ~_umask())
     try:
         weights = staging / WEIGHTS_FILE
         np.savez_compressed(weights, **arrays)
