@@ -110,6 +110,7 @@ class ReadStats:
     bad: int = 0
     samples: list[BadLine] = field(default_factory=list)
     max_samples: int = 10
+    damaged: bool = False  # the file broke off (e.g. a truncated .gz) after good lines
 
     def add_bad(self, line_no: int, text: str, reason: str) -> None:
         """Count a bad line; keep it as a sample while there is room."""
@@ -123,6 +124,7 @@ class ReadStats:
             "lines": self.lines,
             "records": self.records,
             "bad": self.bad,
+            "damaged": self.damaged,
             "samples": [dataclasses.asdict(s) for s in self.samples],
         }
 
@@ -701,13 +703,22 @@ class RecordReader(Iterator[InputRecord]):
                 yield result
 
     def _guarded(self, step: Callable[[], Any]) -> Any:
-        """Run one read step, turning I/O and decompression failures into InputFormatError."""
+        """Run one read step. A file that cannot be read at all is an InputFormatError; one
+        that breaks off after good lines (a truncated or corrupt ``.gz``) keeps what was
+        read: the damage is counted as a bad line with the reason, and reading stops."""
         try:
             return step()
         except (OSError, EOFError, zlib.error, UnicodeError) as exc:
             self.close()
+            read_so_far = self._src.physical if hasattr(self, "_src") else 0
+            if read_so_far and self.stats.records:
+                self.stats.add_bad(read_so_far + 1, "",
+                                   f"file damaged after line {read_so_far}: {exc}; the "
+                                   "lines before it were used")
+                self.stats.damaged = True
+                raise StopIteration from None
             raise InputFormatError(
-                f"{self.name}: reading failed after line {self._src.physical}: {exc}"
+                f"{self.name}: reading failed after line {read_so_far}: {exc}"
             ) from exc
 
     # -- iterator protocol ------------------------------------------------------------------

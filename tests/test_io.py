@@ -261,15 +261,21 @@ def test_missing_file_raises(tmp_path: Path) -> None:
         read_records(tmp_path)  # a directory
 
 
-def test_truncated_gzip_raises_after_good_records(tmp_path: Path) -> None:
+def test_truncated_gzip_keeps_the_good_records_and_counts_the_damage(tmp_path: Path) -> None:
     body = "".join(f"http://h{i}.example/\n" for i in range(20000)).encode()
     path = tmp_path / "cut.txt.gz"
     path.write_bytes(gzip.compress(body)[:-40])
-    got: list[str] = []
-    with pytest.raises(InputFormatError, match=r"cut\.txt\.gz"):
-        for record in read_records(path):
-            got.append(record.url)
-    assert len(got) > 1000  # what was readable was delivered first
+    stats = ReadStats()
+    got = [record.url for record in read_records(path, stats=stats)]
+    assert len(got) > 1000  # what was readable was delivered, and nothing after the damage
+    assert stats.damaged and stats.bad == 1 and "damaged" in stats.samples[-1].reason
+
+
+def test_a_gzip_broken_before_any_line_is_an_input_error(tmp_path: Path) -> None:
+    path = tmp_path / "broken.txt.gz"
+    path.write_bytes(gzip.compress(b"http://a.example/\n" * 10)[:12])
+    with pytest.raises(InputFormatError, match=r"broken\.txt\.gz"):
+        list(read_records(path))
 
 
 def test_empty_inputs() -> None:
