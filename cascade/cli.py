@@ -283,23 +283,36 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
 
 
 def _fetch_setup(args: argparse.Namespace) -> tuple[Any, Any]:
+    """The ``FetchPolicy`` and resolver the fetch options ask for; a bad value is a
+    ``UsageError`` (exit 2). Warns on stderr when no ``--operator`` names who fetches, and
+    when ``--dangerously-allow-wide-networks`` is given."""
     from cascade.fetch import FetchPolicy, StaticResolver, SystemResolver
     from cascade.fetch.resolver import parse_resolve_overrides
 
     try:
         policy = FetchPolicy(
-            ports=tuple(args.port) if args.port else (80, 443),
+            ports=tuple(args.port) if args.port else FetchPolicy.ports,
             deadline_s=args.deadline, max_bytes=args.max_bytes,
             max_redirects=args.max_redirects, obey_robots=not args.ignore_robots,
+            per_host_concurrency=args.per_host_concurrency,
+            per_host_delay_s=args.per_host_delay, max_queue_s=args.max_queue,
             allow_networks=tuple(args.allow_network or ()),
+            allow_wide_networks=args.dangerously_allow_wide_networks,
         )
-        if args.operator:
+        if args.operator is not None:
             policy = policy.with_operator(args.operator)
         resolver = SystemResolver()
         if args.resolve:
             resolver = StaticResolver(parse_resolve_overrides(args.resolve), fallback=resolver)
     except ValueError as exc:
         raise UsageError(str(exc)) from None
+    if args.operator is None:
+        _eprint(f"{args.command}: no --operator given: sites cannot tell who is fetching; "
+                "name your organisation's contact (a URL or mailto: address)")
+    if args.dangerously_allow_wide_networks:
+        _eprint(f"{args.command}: warning: --dangerously-allow-wide-networks: the address "
+                "guard lets through every address in "
+                f"{', '.join(map(str, policy.allow_networks)) or '(no --allow-network)'}")
     return policy, resolver
 
 
@@ -535,19 +548,50 @@ def _add_input(p: argparse.ArgumentParser, required: bool = True) -> None:
 
 
 def _add_fetch_options(p: argparse.ArgumentParser) -> None:
+    from cascade.fetch.policy import FetchPolicy
+
+    default = FetchPolicy()
     p.add_argument("--resolve", action="append", metavar="HOST:ADDRESS",
                    help="answer HOST with ADDRESS instead of asking DNS (repeatable; the "
-                        "address guard still applies)")
+                        "address guard still applies; default: none, DNS answers)")
     p.add_argument("--allow-network", action="append", metavar="CIDR",
-                   help="open a hole in the address guard (repeatable; for tests only)")
+                   help="open a hole in the address guard (repeatable; for tests only, "
+                        "e.g. 127.0.0.1/32; default: none). A global block wider than /24 "
+                        "(IPv4) or /48 (IPv6) is refused unless "
+                        "--dangerously-allow-wide-networks")
+    p.add_argument("--dangerously-allow-wide-networks", action="store_true",
+                   help="DANGEROUS: accept --allow-network blocks of any size, even "
+                        "0.0.0.0/0 or ::/0. Every address inside them, loopback, private "
+                        "networks and the cloud metadata address included, becomes "
+                        "fetchable: any URL, or any redirect from one, can then reach your "
+                        "internal services (default: %(default)s)")
     p.add_argument("--port", action="append", type=int,
-                   help="allowed port (repeatable; default 80 and 443)")
-    p.add_argument("--deadline", type=float, default=10.0, help="seconds for a whole fetch")
-    p.add_argument("--max-bytes", type=int, default=2 << 20, help="bytes read off the wire")
-    p.add_argument("--max-redirects", type=int, default=5)
+                   help="allowed port (repeatable; default: "
+                        f"{' and '.join(map(str, default.ports))})")
+    p.add_argument("--deadline", type=float, default=default.deadline_s, metavar="SECONDS",
+                   help="seconds for a whole fetch, DNS to the last byte (default: "
+                        "%(default)s)")
+    p.add_argument("--max-bytes", type=int, default=default.max_bytes,
+                   help="bytes read off the wire per response (default: %(default)s)")
+    p.add_argument("--max-redirects", type=int, default=default.max_redirects,
+                   help="redirects followed per fetch (default: %(default)s)")
+    p.add_argument("--per-host-concurrency", type=int, default=default.per_host_concurrency,
+                   metavar="N", help="fetches in flight at once to one host "
+                                     "(default: %(default)s)")
+    p.add_argument("--per-host-delay", type=float, default=default.per_host_delay_s,
+                   metavar="SECONDS", help="least time between two requests to one host "
+                                           "(default: %(default)s)")
+    p.add_argument("--max-queue", type=float, default=default.max_queue_s, metavar="SECONDS",
+                   help="longest a fetch may wait in the fetcher's own queues (all hosts' "
+                        "and its host's turn) before its deadline starts; a longer wait "
+                        "ends it queue-timeout (default: %(default)s)")
     p.add_argument("--ignore-robots", action="store_true",
-                   help="do not obey robots.txt (only where your policy allows it)")
-    p.add_argument("--operator", help="contact (URL or mail) put in the User-Agent")
+                   help="do not obey robots.txt (only where your policy allows it; "
+                        "default: %(default)s)")
+    p.add_argument("--operator", metavar="CONTACT",
+                   help="who runs the fetcher, put in the User-Agent so site owners can "
+                        "reach you: a URL or mailto: address on one line (default: none, "
+                        "with a warning)")
 
 
 def build_parser() -> argparse.ArgumentParser:
