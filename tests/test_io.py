@@ -66,7 +66,8 @@ def test_csv_and_tsv(tmp_path: Path, gz: bool, suffix: str, delim: str) -> None:
     reader = read_records(path)
     assert reader.format == suffix[1:]
     records = list(reader)
-    assert records[0] == InputRecord(2, URLS[0], "news", 3, "2024-01-02T00:00:00Z", {"source": "feed"})
+    assert records[0] == InputRecord(2, URLS[0], "news", 3, "2024-01-02T00:00:00Z",
+                                     {"source": "feed"})
     assert records[1] == InputRecord(3, URLS[1], None, 2, None, {"source": "crawl"})
     assert records[2].count == 1 and records[2].label == "shop"
 
