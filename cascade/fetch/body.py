@@ -43,7 +43,9 @@ class _Layer:
         self._d = zlib.decompressobj(31 if coding in ("gzip", "x-gzip") else 15)
         self._started = False
 
-    def feed(self, data: bytes, room: int) -> bytes:
+    def feed(self, data: bytes, room: int) -> tuple[bytes, bool]:
+        """Decode ``data``; at most ``room`` bytes come back, with True when more would
+        have come (the cap is passed: nothing past it is ever decoded)."""
         if not self._started and self.coding == "deflate" and data:
             self._started = True
             if (data[0] & 0x0F) != 8:
@@ -54,8 +56,8 @@ class _Layer:
         except zlib.error as exc:
             raise BadEncoding(f"{self.coding} data is corrupt: {exc}") from None
         if len(out) > room or self._d.unconsumed_tail:
-            raise BodyTooLarge("decoded body over the cap")
-        return out
+            return out[:room], True
+        return out, False
 
     def finish(self) -> None:
         """The stream ended: a compressed stream cut short is broken, not a page."""
@@ -83,17 +85,14 @@ async def read_capped(
         if wire > max_bytes:
             raise BodyTooLarge(f"more than {max_bytes} bytes on the wire")
         data = chunk
-        try:
-            for layer in layers:
-                data = layer.feed(data, max_decoded - len(out))
-        except BodyTooLarge:
-            if not truncate:
-                raise
-            return bytes(out), wire
-        if len(out) + len(data) > max_decoded:
+        over = False
+        for layer in layers:  # each layer within what is left of the decoded cap
+            data, passed = layer.feed(data, max_decoded - len(out))
+            over = over or passed
+        if over or len(out) + len(data) > max_decoded:
             if not truncate:
                 raise BodyTooLarge(f"more than {max_decoded} bytes after decoding")
-            out += data[: max_decoded - len(out)]
+            out += data[: max_decoded - len(out)]  # robots.txt: the part within the cap
             return bytes(out), wire
         out += data
         if truncate and (wire >= max_bytes or len(out) >= max_decoded):

@@ -165,9 +165,9 @@ class Fetcher:
             self._global.release()
 
     def _wire_limit(self) -> int:
-        """Every byte one fetch may read: each hop's head, and one body with its framing."""
-        p = self.policy
-        return p.max_bytes + (p.max_redirects + 1) * p.max_header_bytes
+        """Every byte one fetch may read off the socket: every hop's head, any 1xx
+        responses, the body with its framing. One number, so it bounds bandwidth."""
+        return self.policy.max_bytes
 
     async def _in_queue(self, waiting: Awaitable[object], what: str) -> None:
         """Wait for one of the fetcher's own queues with every running deadline paused and
@@ -356,14 +356,9 @@ class Fetcher:
                 raise _Transient(f"status {status}", wait or 0.0, status)
             if status in REDIRECT_STATUSES or status >= 400:
                 return response, None
-            if meter is not None:  # the body and its framing (chunk-size lines, extensions)
-                meter.start_phase(max_bytes + (64 << 10) if truncate else max_bytes,
-                                  "response body")
-            try:
-                body = await self._body(response, max_bytes, truncate)
-            finally:
-                if meter is not None:
-                    meter.end_phase()
+            # the body and its framing (chunk-size lines, extensions) count against the
+            # fetch's wire meter, which already holds this hop's head and earlier hops
+            body = await self._body(response, max_bytes, truncate)
             return response, body
         finally:
             await response.aclose()

@@ -26,7 +26,7 @@ class FetchPolicy:
     deadline_s: float = 10.0  # one fetch from its first connection: DNS, robots, hops, body
     connect_timeout_s: float = 5.0
     max_queue_s: float = 60.0  # waiting in the fetcher's own queues, before the deadline runs
-    max_bytes: int = 2 << 20  # bytes read off the socket per response body, framing included
+    max_bytes: int = 2 << 20  # bytes read off the socket per fetch: heads, 1xx, body, framing
     max_decoded_bytes: int = 4 << 20  # bytes after Content-Encoding is undone
     max_encoding_layers: int = 2  # e.g. "gzip" is 1; "gzip, br" is 2
     max_header_bytes: int = 32 << 10  # bytes read per hop before the final header block ends

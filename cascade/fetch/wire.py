@@ -44,7 +44,8 @@ class WireMeter:
         With ``at_read`` the phase is checked when a new read starts rather than on the
         bytes a read returns: for a response head, whose last read may also carry the
         start of the body, a read asked for after ``allowance`` bytes means the head
-        (with any 1xx responses before it) is over its cap; the overshoot is one read."""
+        (with any 1xx responses before it) is over its cap. Reads are sized so that the
+        overshoot is one byte."""
         self._phase_end = self.read + int(allowance)
         self._phase_name = name
         self._phase_at_read = at_read
@@ -62,7 +63,7 @@ class WireMeter:
                 self.read >= self._phase_end:
             self._fail(f"{self._phase_name} over its cap")
         room = self.limit - self.read + 1  # one byte more, to see a cap passed
-        if self._phase_end is not None and not self._phase_at_read:
+        if self._phase_end is not None:  # so a phase is passed by one byte at most
             room = min(room, self._phase_end - self.read + 1)
         return max(1, min(max_bytes, room))
 
