@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from cascade.errors import UsageError
 from cascade.evaluate import evaluate_proba, evaluation_split
 from cascade.io import open_writer
 from cascade.scenario import generate_telemetry, write_telemetry_csv
@@ -60,6 +61,10 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
     keys = [normalize(r.url) for r in records]
     labels = [r.label for r in records]
     split = evaluation_split(keys, [r.seen_at for r in records], test_fraction=0.25, seed=seed)
+    if not split.train.size or not split.test.size or len(set(labels)) < 2:
+        raise UsageError(f"{n_sites} invented sites are too few for a train and a held-out "
+                         f"part (got {len(split.train)} train, {len(split.test)} held-out "
+                         "URLs); use --sites 20 or more")
     _say(quiet, f"split {split.method} at {split.cut}: {len(split.train)} train, "
                f"{len(split.test)} test (new domains only)")
     train = split.train

@@ -13,7 +13,6 @@ from hypothesis import strategies as st
 from cascade.budget import Budget
 from cascade.budget_meter import BudgetMeter, fetch_within_budget
 from cascade.fetch import Fetcher, FetchPolicy
-from cascade.scenario import generate_telemetry
 from cascade.scenario.site_farm import SiteFarm
 from cascade.urls import normalize
 
@@ -76,8 +75,8 @@ def test_small_pages_leave_room_for_more_fetches_than_the_worst_case() -> None:
     assert rows[-1][2] == "budget:bytes"
 
 
-def test_meter_against_the_loopback_site_farm() -> None:
-    records = generate_telemetry(seed=3, n_sites=30)[:40]
+def test_meter_against_the_loopback_site_farm(scenario) -> None:
+    records = scenario.records[:40]
     with SiteFarm(records) as farm:
         policy = FetchPolicy(ports=(farm.port,), allow_networks=("127.0.0.1/32",),
                              per_host_delay_s=0.0, deadline_s=3.0, max_bytes=64 << 10)

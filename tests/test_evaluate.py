@@ -6,14 +6,12 @@ import numpy as np
 import pytest
 
 from cascade.evaluate import evaluate_proba, evaluation_split
-from cascade.scenario import generate_telemetry
-from cascade.urls import normalize
 
 
 @pytest.fixture(scope="module")
-def log():
-    records = generate_telemetry(seed=4, n_sites=300)
-    return records, [normalize(r.url) for r in records]
+def log(scenario):
+    """The session scenario's records (first-sighting order) and their keys."""
+    return scenario.records, scenario.keys
 
 
 def test_time_split_trains_before_the_cut_and_tests_new_domains(log) -> None:

@@ -39,13 +39,14 @@ def _shares(records: list[TelemetryRecord], attr: str) -> dict[str, float]:
     return {k: v / len(records) for k, v in counts.items()}
 
 
-def test_same_seed_gives_same_records(records: list[TelemetryRecord]) -> None:
-    assert generate_telemetry(seed=0) == records
+def test_same_seed_gives_same_records(scenario) -> None:
+    # the session scenario was generated once already, with the same arguments
+    assert generate_telemetry(seed=scenario.seed, n_sites=scenario.n_sites) == scenario.records
 
 
-def test_different_seed_gives_different_records(records: list[TelemetryRecord]) -> None:
-    other = generate_telemetry(seed=1)
-    assert {r.url for r in other} != {r.url for r in records}
+def test_different_seed_gives_different_records(scenario) -> None:
+    other = generate_telemetry(seed=scenario.seed + 1, n_sites=scenario.n_sites)
+    assert {r.url for r in other} != {r.url for r in scenario.records}
 
 
 def test_default_size_is_about_ten_thousand_urls(records: list[TelemetryRecord]) -> None:

@@ -18,6 +18,9 @@ from scipy.optimize import minimize
 __all__ = ["fit_softmax"]
 
 
+_SCIPY_FTOL = 2.220446049250313e-09  # scipy.optimize's L-BFGS-B default (factr 1e7 x eps)
+
+
 def fit_softmax(
     X: sp.csr_matrix,
     y: np.ndarray,
@@ -72,8 +75,12 @@ def fit_softmax(
     if init is not None:  # warm start, e.g. a refit on more rows of the same problem
         theta0[: d * k] = np.asarray(init[0], dtype=np.float64)[used].ravel()
         theta0[d * k :] = np.clip(np.asarray(init[1], dtype=np.float64), -30.0, 30.0)
+    # ``tol`` bounds the projected gradient and, scaled alike, L-BFGS-B's relative
+    # reduction stop (ftol); at the default tol of 1e-6 that is scipy's own default ftol,
+    # a tighter tol tightens both (otherwise ftol ends the fit first and tol does nothing)
+    ftol = _SCIPY_FTOL * (tol / 1e-6)
     result = minimize(objective, theta0, jac=True, method="L-BFGS-B",
-                      options={"maxiter": max_iter, "gtol": tol, "maxcor": 10})
+                      options={"maxiter": max_iter, "gtol": tol, "ftol": ftol, "maxcor": 10})
     W = np.zeros((n_features, k), dtype=np.float32)
     W[used] = result.x[: d * k].reshape(d, k)
     b = result.x[d * k :].astype(np.float64)

@@ -1,0 +1,105 @@
+"""The own multinomial logistic regression solver (``cascade.models.softmax.fit_softmax``)
+against scikit-learn's ``LogisticRegression`` (lbfgs, multinomial) on the same small sparse
+problem: both minimize ``C * sum(w_i * loss_i) + ||W||^2 / 2`` with the intercept not
+penalized, so their answers must agree.
+
+``fit_softmax`` normalizes the row weights to sum to 1 and uses ``alpha = 1 / (C * total)``
+for the L2 term; its objective is then scikit-learn's divided by ``C * total``, a constant,
+with the same minimizer. The intercepts are compared after centering: with an unpenalized
+intercept, adding a constant to every class's intercept changes no probability.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from sklearn.linear_model import LogisticRegression
+from sklearn.metrics import log_loss
+
+from cascade.models.softmax import fit_softmax
+
+N_ROWS, N_COLUMNS, N_CLASSES = 300, 50, 3
+COEF_TOL = 1e-3  # max abs difference of any coefficient or centered intercept
+TIGHT = {"min_count": 1, "max_iter": 5000, "tol": 1e-10}
+
+
+@pytest.fixture(scope="module")
+def problem() -> tuple[sp.csr_matrix, np.ndarray, np.ndarray]:
+    """Sparse rows, labels drawn from a softmax model over them, and uneven row weights
+    (summing to more than the row count, so the C scaling matters)."""
+    rng = np.random.default_rng(0)
+    X = sp.random(N_ROWS, N_COLUMNS, density=0.15, random_state=1, format="csr",
+                  data_rvs=lambda m: rng.uniform(0.5, 1.5, m))
+    assert (np.bincount(X.indices, minlength=N_COLUMNS) >= 1).all()  # min_count drops none
+    z = X @ rng.normal(0.0, 2.0, (N_COLUMNS, N_CLASSES))
+    p = np.exp(z - z.max(axis=1, keepdims=True))
+    p /= p.sum(axis=1, keepdims=True)
+    y = np.array([rng.choice(N_CLASSES, p=row) for row in p])
+    weight = rng.uniform(0.2, 3.0, N_ROWS)
+    return X, y, weight
+
+
+def _proba(X: sp.csr_matrix, W: np.ndarray, b: np.ndarray) -> np.ndarray:
+    z = X @ W.astype(np.float64) + b
+    p = np.exp(z - z.max(axis=1, keepdims=True))
+    return p / p.sum(axis=1, keepdims=True)
+
+
+def _reference(X, y, C, weight=None) -> LogisticRegression:
+    # scikit-learn is the reference: lbfgs minimizes C * sum(w_i * loss_i) + ||W||^2 / 2,
+    # multinomial for more than two classes, intercept not penalized
+    return LogisticRegression(C=C, solver="lbfgs", tol=1e-10, max_iter=10000).fit(
+        X, y, sample_weight=weight)
+
+
+@pytest.mark.parametrize("C", [0.5, 5.0])
+def test_coefficients_match_sklearn(problem, C) -> None:
+    X, y, _ = problem
+    W, b, info = fit_softmax(X, y, N_CLASSES, C=C, **TIGHT)
+    ref = _reference(X, y, C)
+    assert info["used_columns"] == N_COLUMNS
+    # reference: sklearn.linear_model.LogisticRegression, coef_ is (classes, columns)
+    assert np.abs(W - ref.coef_.T).max() < COEF_TOL
+    assert np.abs((b - b.mean()) - (ref.intercept_ - ref.intercept_.mean())).max() < COEF_TOL
+
+
+@pytest.mark.parametrize("C", [0.5, 5.0])
+def test_weighted_coefficients_match_sklearn(problem, C) -> None:
+    # weights summing to ~480 over 300 rows: a C not scaled by the total would be off
+    X, y, weight = problem
+    W, b, _ = fit_softmax(X, y, N_CLASSES, C=C, sample_weight=weight, **TIGHT)
+    ref = _reference(X, y, C, weight)
+    # reference: sklearn.linear_model.LogisticRegression with sample_weight
+    assert np.abs(W - ref.coef_.T).max() < COEF_TOL
+    assert np.abs((b - b.mean()) - (ref.intercept_ - ref.intercept_.mean())).max() < COEF_TOL
+
+
+@pytest.mark.parametrize("C", [0.5, 5.0])
+def test_log_loss_is_close_to_sklearns(problem, C) -> None:
+    X, y, _ = problem
+    W, b, _ = fit_softmax(X, y, N_CLASSES, C=C, **TIGHT)
+    ref = _reference(X, y, C)
+    # reference: sklearn.linear_model.LogisticRegression scored by sklearn.metrics.log_loss;
+    assert log_loss(y, _proba(X, W, b)) == pytest.approx(log_loss(y, ref.predict_proba(X)),
+                                                         abs=1e-5)
+
+
+def test_a_tight_tol_matches_sklearns_log_loss_within_1e_6(problem) -> None:
+    X, y, _ = problem
+    W, b, _ = fit_softmax(X, y, N_CLASSES, C=0.5, **TIGHT)
+    ref = _reference(X, y, 0.5)
+    # reference: sklearn.linear_model.LogisticRegression scored by sklearn.metrics.log_loss;
+    # a tight tol must tighten the stop (it once set only the gradient bound)
+    assert log_loss(y, _proba(X, W, b)) == pytest.approx(log_loss(y, ref.predict_proba(X)),
+                                                         abs=1e-6)
+
+
+def test_reported_objective_is_the_documented_one_over_c_times_total(problem) -> None:
+    X, y, weight = problem
+    C = 2.0
+    W, b, info = fit_softmax(X, y, N_CLASSES, C=C, sample_weight=weight, **TIGHT)
+    p = _proba(X, W, b)
+    loss = -np.log(p[np.arange(N_ROWS), y])
+    documented = C * float(weight @ loss) + 0.5 * float(np.sum(W.astype(np.float64) ** 2))
+    assert info["objective"] == pytest.approx(documented / (C * weight.sum()), rel=1e-6)
