@@ -53,6 +53,7 @@ class NightOptions:
     review_size: int = 500
     use_history: bool = True
     skip_fresh: bool = True
+    use_refine_queue: bool = True  # also decide what the service queued (store.refine_queue)
     progress: bool | None = None  # None: a bar on a terminal, plain lines otherwise
 
 
@@ -68,6 +69,7 @@ class NightResult:
 class _LogEntry:
     key: UrlKey
     count: int
+    from_queue: bool = False
 
 
 def _bad_kind(reason: str) -> str:
@@ -182,6 +184,9 @@ def _run_night(bundle: ModelBundle, store: VerdictStore, log: str | Path, out_di
     stats = ReadStats()
     entries = read_log(log, stats, fmt=log_format, say=tell)
     tell(f"log: {stats.lines} lines, {len(entries)} distinct URLs, {stats.bad} bad lines")
+    queued = _add_queued(store, entries) if opts.use_refine_queue else []
+    if queued:
+        tell(f"refine queue: {len(queued)} URLs the service flagged, not in the log")
     urls = list(entries)
     lookups = {u: e.count for u, e in entries.items()}
     store.start_run(run_id, {"log": str(log), "budget": opts.budget.describe(),
@@ -246,7 +251,26 @@ def _run_night(bundle: ModelBundle, store: VerdictStore, log: str | Path, out_di
     paths = _write_outputs(bundle, store, run_id, out, report, keys, proba, gain, row_of,
                            lookups, opts)
     store.set_run_state(run_id, "done", report)
+    if opts.use_refine_queue:  # decided tonight: the service queues them again if need be
+        store.dequeue_refine(work)
     return NightResult(run_id, report, paths, resumed)
+
+
+def _add_queued(store: VerdictStore, entries: dict[str, _LogEntry]) -> list[str]:
+    """Add the refine queue's URLs that the log does not have (with the lookups the
+    service counted); a URL in both keeps the log's count, which already holds them."""
+    added = []
+    for url, count in store.refine_queue():
+        if url in entries:
+            continue
+        try:
+            key = normalize(url)
+        except InvalidURL:
+            continue
+        if key.url not in entries:
+            entries[key.url] = _LogEntry(key, count, from_queue=True)
+            added.append(key.url)
+    return added
 
 
 def _score(bundle: ModelBundle, keys: Sequence[UrlKey]) -> np.ndarray:
@@ -383,6 +407,7 @@ def _report(bundle: ModelBundle, store: VerdictStore, run_id: str,
                   "bad_by_kind_in_samples": dict(bad_kinds)},
         "decided": len(work),
         "fresh_skipped": len(entries) - len(work),
+        "from_refine_queue": sum(1 for e in entries.values() if e.from_queue),
         "budget": opts.budget.describe(),
         "spent": spent,
         "fetch_outcomes": {o: n for o, n in fetch_rows},

@@ -525,6 +525,35 @@ def cmd_store(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_serve(args: argparse.Namespace) -> int:
+    import logging
+
+    from cascade.service import Triage, TriagePolicy
+    from cascade.service_http import ServeConfig, load_token, serve
+
+    try:
+        import starlette  # noqa: F401
+        import uvicorn  # noqa: F401
+    except ImportError as exc:
+        raise UsageError(f"cascade serve needs the serve extra ({exc.name} is missing): "
+                         "pip install -e '.[serve]'") from None
+
+    config = ServeConfig(host=args.host, port=args.port, token=load_token(args.token_file),
+                         max_body_bytes=args.max_body_bytes, max_batch=args.max_batch,
+                         access_log=args.access_log)
+    policy = TriagePolicy(fetch_below=args.fetch_below,
+                          domain_fallback=not args.no_domain_fallback,
+                          cache_size=args.cache_size, queue=not args.no_queue)
+    logging.basicConfig(level=logging.WARNING if args.quiet else logging.INFO,
+                        format="%(message)s", stream=sys.stderr)
+    with Triage.open(args.model, args.store, policy, create_store=args.create_store) as triage:
+        if not args.quiet:
+            _eprint(f"serve: model {triage.model_version} on http://{args.host}:{args.port}/ "
+                    f"(store {triage.store_path or 'none'}); Ctrl-C to stop")
+        serve(triage, config)
+    return EXIT_OK
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     from cascade.demo import run_demo
 
@@ -753,6 +782,35 @@ def build_parser() -> argparse.ArgumentParser:
                                             "(default: a local cluster of 2 processes)")
     _add_fetch_options(p)
     p.set_defaults(func=cmd_night)
+
+    p = command("serve", "Serve decisions over HTTP for a filtering service: the store "
+                         "first, then the URL model; URLs worth a fetch are queued for the "
+                         "nightly job. Needs the serve extra: pip install -e '.[serve]'.")
+    p.add_argument("--model", "-m", required=True, help="model directory (cascade train)")
+    p.add_argument("--store", "-s", help="verdict store (.sqlite) to answer from and queue "
+                                         "into (default: the model alone)")
+    p.add_argument("--create-store", action="store_true",
+                   help="start an empty store if --store does not exist")
+    p.add_argument("--host", default="127.0.0.1",
+                   help="address to bind (default 127.0.0.1; any other needs a token)")
+    p.add_argument("--port", type=int, default=8787, help="port (default 8787)")
+    p.add_argument("--token-file", help="file whose first line is the bearer token "
+                                        "(default: the CASCADE_SERVE_TOKEN variable)")
+    p.add_argument("--fetch-below", type=float, default=0.8,
+                   help="a verdict under this confidence is queued for a fetch (default 0.8)")
+    p.add_argument("--no-domain-fallback", action="store_true",
+                   help="do not answer an unknown URL with its domain's stored verdict")
+    p.add_argument("--no-queue", action="store_true",
+                   help="do not write URLs worth a fetch to the store's refine queue")
+    p.add_argument("--cache-size", type=int, default=65_536,
+                   help="decisions kept in memory (default 65536)")
+    p.add_argument("--max-body-bytes", type=int, default=1 << 20,
+                   help="largest request body (default 1048576)")
+    p.add_argument("--max-batch", type=int, default=10_000,
+                   help="most URLs in one request (default 10000)")
+    p.add_argument("--access-log", action="store_true",
+                   help="one JSON line per request on stderr")
+    p.set_defaults(func=cmd_serve)
 
     p = command("store", "Look after the verdict store: export, import, training file, an "
                          "analyst's label, counts.")

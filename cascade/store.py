@@ -364,8 +364,7 @@ class VerdictStore:
     def domain_verdict(self, domain: str) -> StoredVerdict | None:
         """A verdict for the registered domain: its own root URL's, else the most common
         page-or-label category among its URLs (None when the store knows nothing of it)."""
-        for root in (f"http://{domain}/", f"https://{domain}/", f"http://www.{domain}/",
-                     f"https://www.{domain}/"):
+        for root in _roots(domain):
             stored = self.get(root)
             if stored is not None and stored.verdict.stage != Stage.URL:
                 return stored
@@ -373,6 +372,59 @@ class VerdictStore:
             f"SELECT {self._COLUMNS} FROM verdicts WHERE domain = ? AND stage != 'url' "
             "ORDER BY confidence DESC LIMIT 1", (domain,)).fetchone()
         return None if row is None else self._row_to_stored(row)
+
+    def known(self, url: str, domain: str | None = None
+              ) -> tuple[StoredVerdict, bool] | None:
+        """The refined verdict (page or label stage) for ``url``, or, with ``domain``, the
+        registered domain's (as ``domain_verdict``: its root URL's first, then its most
+        confident); with True when it is the URL's own. One indexed query: the service's
+        request path."""
+        if domain is None:
+            row = self._conn.execute(
+                f"SELECT {self._COLUMNS}, 1 FROM verdicts WHERE url = ? AND stage != 'url'",
+                (url,)).fetchone()
+        else:
+            row = self._conn.execute(
+                f"SELECT {self._COLUMNS}, url = ?1 AS exact FROM verdicts "
+                "WHERE stage != 'url' AND (url = ?1 OR domain = ?2) "
+                "ORDER BY exact DESC, url IN (?3, ?4, ?5, ?6) DESC, confidence DESC LIMIT 1",
+                (url, domain, *_roots(domain))).fetchone()
+        if row is None:
+            return None
+        return self._row_to_stored(row[:-1]), bool(row[-1])
+
+    def known_many(self, urls: Sequence[str], domains: Sequence[str] | None = None
+                   ) -> dict[str, tuple[StoredVerdict, bool]]:
+        """``known`` for many URLs (``domains`` aligned with ``urls``), in batched reads."""
+        out: dict[str, tuple[StoredVerdict, bool]] = {}
+        for start in range(0, len(urls), 500):
+            part = list(urls[start:start + 500])
+            marks = ",".join("?" * len(part))
+            for row in self._conn.execute(f"SELECT {self._COLUMNS} FROM verdicts WHERE "
+                                          f"url IN ({marks}) AND stage != 'url'", part):
+                stored = self._row_to_stored(row)
+                out[stored.verdict.url] = (stored, True)
+        if domains is not None:
+            by_domain: dict[str, tuple[StoredVerdict, bool] | None] = {}
+            for url, domain in zip(urls, domains, strict=True):
+                if url in out or not domain:
+                    continue
+                if domain not in by_domain:
+                    row = self._conn.execute(
+                        f"SELECT {self._COLUMNS} FROM verdicts WHERE stage != 'url' AND "
+                        "domain = ?1 ORDER BY url IN (?2, ?3, ?4, ?5) DESC, confidence DESC "
+                        "LIMIT 1", (domain, *_roots(domain))).fetchone()
+                    by_domain[domain] = None if row is None else \
+                        (self._row_to_stored(row), False)
+                if by_domain[domain] is not None:
+                    out[url] = by_domain[domain]  # type: ignore[assignment]
+        return out
+
+    def change_mark(self) -> int:
+        """A number that changes whenever a verdict is written (the history only grows):
+        how a reader knows its cached answers may be out of date."""
+        row = self._conn.execute("SELECT MAX(id) FROM history").fetchone()
+        return int(row[0] or 0)
 
     def fresh(self, urls: Sequence[str], now: float | None = None) -> set[str]:
         """The URLs whose current verdict is still fresh under the policy's TTLs."""
@@ -469,6 +521,14 @@ class VerdictStore:
         if limit is not None:
             sql += f" LIMIT {int(limit)}"
         return [(u, int(c)) for u, c in self._conn.execute(sql)]
+
+    def dequeue_refine(self, urls: Iterable[str]) -> int:
+        """Take URLs off the refine queue (the nightly job, once it decided them)."""
+        n = 0
+        with self.batch() as c:
+            for url in urls:
+                n += c.execute("DELETE FROM refine_queue WHERE url = ?", (url,)).rowcount
+        return n
 
     def queue_length(self) -> int:
         return int(self._conn.execute("SELECT COUNT(*) FROM refine_queue").fetchone()[0])
@@ -603,6 +663,12 @@ class VerdictStore:
                     writer.writerow([v.url, v.category, "page-verdict"])
                     n += 1
         return n
+
+
+def _roots(domain: str) -> tuple[str, str, str, str]:
+    """The root URLs that speak for a registered domain, most telling first."""
+    return (f"http://{domain}/", f"https://{domain}/", f"http://www.{domain}/",
+            f"https://www.{domain}/")
 
 
 def _host(url: str) -> str:

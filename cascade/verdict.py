@@ -44,6 +44,9 @@ class Reason(StrEnum):
     NO_PAGE_MODEL = "no-page-model"  # the model directory has no page model
     # an analyst
     ANALYST = "analyst"  # stage "label"
+    # the embedded service (cascade.service), answering from the store
+    DOMAIN = "domain"  # the store's verdict for the URL's registered domain
+    STALE = "stale"  # a stored verdict past its time-to-live: served, and queued again
 
 
 def fetch_reason(outcome: object) -> str:
