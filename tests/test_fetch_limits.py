@@ -130,8 +130,10 @@ def test_endless_header_block_stops_at_the_header_cap(server, policy, case) -> N
 # ---------------------------------------------------------------- the body and its framing
 def test_tiny_chunks_count_against_the_wire_cap(server, policy) -> None:
     # RFC 9112 section 7.1: "1" CRLF "x" CRLF is six bytes on the wire per body byte; a
-    # cap on body bytes alone would let six times the cap through
+    # cap on body bytes alone would let six times the cap through (the chunk-count cap is
+    # lifted here, so the byte count is what stops it)
     path = "/_raw/tiny-chunks"
+    policy = dataclasses.replace(policy, max_body_chunks=10**7)
     (result,), elapsed = fetch_all(policy, [server.url("chunks.test", path)])
     assert result.outcome is FetchOutcome.TOO_LARGE, explain(result)
     assert elapsed < WELL_BEFORE, explain(result)
@@ -156,10 +158,24 @@ def test_chunk_extensions_count_against_the_wire_cap(server, policy) -> None:
     assert result.bytes_read >= MAX_BYTES, explain(result)
 
 
+def test_tiny_chunks_are_stopped_by_their_count(server, policy) -> None:
+    # parsing a chunk costs CPU whatever its size: 8192 one-byte chunks are about 48 KiB
+    # on the wire, far under the byte cap, and the fetch ends there
+    path = "/_raw/tiny-chunks"
+    (result,), elapsed = fetch_all(policy, [server.url("count.test", path)])
+    assert result.outcome is FetchOutcome.TOO_LARGE, explain(result)
+    assert "8192 body chunks" in result.detail, explain(result)
+    assert elapsed < WELL_BEFORE, explain(result)
+    exchange = only_exchange(server, path)
+    assert exchange.client_closed, exchange.ended_by
+    assert result.bytes_read < MAX_BYTES // 2, explain(result)
+
+
 def test_wire_cap_counts_the_response_head_with_the_body(server, policy) -> None:
     # max_bytes is every byte one fetch reads off the socket, the head included: the fetch
     # ends one byte past it (the byte that shows the cap was passed), not a head later
     path = "/_raw/tiny-chunks"
+    policy = dataclasses.replace(policy, max_body_chunks=10**7)
     (result,), _ = fetch_all(policy, [server.url("whole.test", path)])
     assert result.outcome is FetchOutcome.TOO_LARGE, explain(result)
     assert MAX_BYTES <= result.bytes_read <= MAX_BYTES + 1, explain(result)

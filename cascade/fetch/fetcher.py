@@ -93,6 +93,9 @@ _CLOCK: contextvars.ContextVar[_Clock | None] = contextvars.ContextVar("cascade_
                                                                        default=None)
 
 
+_STARTS_PER_TURN = 8
+
+
 class Fetcher:
     """Async fetcher. Use as ``async with Fetcher(policy) as f: await f.fetch(url)``.
 
@@ -110,6 +113,7 @@ class Fetcher:
                               keepalive_expiry=5.0)
         self.transport = PinnedTransport(limits, ssl_context=ssl_context)
         self._global = asyncio.Semaphore(self.policy.concurrency)
+        self._started_this_turn = 0
         self._hosts: dict[str, _HostState] = {}
         self._robots = RobotsCache(self.policy.robots_cache_s,
                                    max_bytes=self.policy.robots_cache_bytes,
@@ -141,6 +145,7 @@ class Fetcher:
             return self._result(url, hops, clock, FetchOutcome.QUEUE_TIMEOUT,
                                 f"waited {self.policy.max_queue_s} s for a free fetch slot",
                                 meter=None)
+        await self._stagger()
         clock.queued_s = clock.queued_before = time.monotonic() - queued_at
         clock.started = time.monotonic()
         meter = WireMeter(self._wire_limit())
@@ -163,6 +168,20 @@ class Fetcher:
             reset_metering(meter_token)
             _CLOCK.reset(clock_token)
             self._global.release()
+
+    async def _stagger(self) -> None:
+        """Let at most ``_STARTS_PER_TURN`` fetches start per turn of the event loop: two
+        hundred fetches handed over at once would otherwise all take their first steps in
+        one turn, and every other task (other fetches' reads, the caller's) waits for all
+        of them."""
+        while self._started_this_turn >= _STARTS_PER_TURN:
+            await asyncio.sleep(0)
+        if self._started_this_turn == 0:
+            asyncio.get_running_loop().call_soon(self._new_turn)
+        self._started_this_turn += 1
+
+    def _new_turn(self) -> None:
+        self._started_this_turn = 0
 
     def _wire_limit(self) -> int:
         """Every byte one fetch may read off the socket: every hop's head, any 1xx
@@ -378,7 +397,8 @@ class Fetcher:
         meter = _current_meter()
         try:
             body, _ = await read_capped(_raw(response), encodings, max_bytes, decoded_cap,
-                                        truncate=truncate)
+                                        truncate=truncate,
+                                        max_pieces=self.policy.max_body_chunks)
         except BodyTooLarge as exc:
             raise _Stop(FetchOutcome.TOO_LARGE, str(exc), response.status_code) from None
         except BadEncoding as exc:
@@ -479,8 +499,7 @@ class Fetcher:
         except _Stop as stop:
             return False, f"robots.txt: {stop.detail}"
         agent = self.policy.user_agent.split("/", 1)[0]
-        allowed = rules.allows(key.url, agent)
-        return allowed, rules.detail
+        return await self._robots.allows(rules, key.url, agent)
 
     async def _fetch(self, url: str, clock: _Clock, hops: list[Hop],
                      meter: WireMeter) -> FetchResult:

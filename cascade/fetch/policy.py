@@ -30,6 +30,7 @@ class FetchPolicy:
     max_decoded_bytes: int = 4 << 20  # bytes after Content-Encoding is undone
     max_encoding_layers: int = 2  # e.g. "gzip" is 1; "gzip, br" is 2
     max_header_bytes: int = 32 << 10  # bytes read per hop before the final header block ends
+    max_body_chunks: int = 8192  # pieces of one body: tiny chunks cost CPU, not bytes
     content_types: tuple[str, ...] = DEFAULT_CONTENT_TYPES
     user_agent: str = "cascade-fetcher/0.1 (URL categorization; operator not configured)"
     obey_robots: bool = True
@@ -54,7 +55,8 @@ class FetchPolicy:
         for name in ("per_host_delay_s", "robots_cache_s", "robots_failure_cache_s"):
             if not getattr(self, name) >= 0:
                 raise ValueError(f"FetchPolicy.{name} must not be negative")
-        for name in ("max_bytes", "max_decoded_bytes", "max_header_bytes", "concurrency",
+        for name in ("max_bytes", "max_decoded_bytes", "max_header_bytes", "max_body_chunks",
+                     "concurrency",
                      "per_host_concurrency", "robots_max_bytes", "robots_cache_bytes"):
             if getattr(self, name) < 1:
                 raise ValueError(f"FetchPolicy.{name} must be at least 1")

@@ -23,11 +23,15 @@ from dataclasses import dataclass, field
 
 from protego import Protego
 
-__all__ = ["RobotsCache", "RobotsRules", "interpret", "parse_rules"]
+__all__ = ["MAX_RULES_PER_GROUP", "RobotsCache", "RobotsRules", "compact_rules",
+           "compact_rules_async", "interpret", "parse_rules"]
 
 #: Estimated bytes of memory per byte of parsed robots.txt text (protego's objects),
 #: measured on a 500 KiB file of Disallow lines (about 15x), rounded up.
 _MEMORY_PER_TEXT_BYTE = 16
+#: Rule sets up to this estimated size (about 4 KiB of text) are matched on the caller's
+#: thread; larger ones in the worker threads.
+_INLINE_MATCH_SIZE = 256 + _MEMORY_PER_TEXT_BYTE * 4096
 
 
 @dataclass(frozen=True)
@@ -51,9 +55,78 @@ class RobotsRules:
 RobotsLoader = Callable[[str], Awaitable[tuple[int | None, bytes, str]]]
 
 
-def parse_rules(body: bytes) -> Protego:
-    """Parse robots.txt bytes (UTF-8, RFC 9309 section 2.3; bad bytes replaced)."""
-    return Protego.parse(body.decode("utf-8", errors="replace"))
+#: Distinct allow/disallow rules one group may hold; a file with more is treated as
+#: "disallow all" (the careful reading) rather than matched rule by rule on every fetch.
+MAX_RULES_PER_GROUP = 5_000
+
+
+class TooManyRules(Exception):  # noqa: N818 - internal signal, mapped to disallow-all
+    pass
+
+
+class _Compactor:
+    """``compact_rules``'s state, so the work can be done a slice of lines at a time."""
+
+    def __init__(self, max_rules: int) -> None:
+        self.max_rules = max_rules
+        self.out: list[str] = []
+        self.seen: set[str] = set()
+        self.in_rules = False
+
+    def feed(self, lines: list[str]) -> None:
+        out, seen = self.out, self.seen
+        for raw in lines:
+            line = raw.split("#", 1)[0].strip()
+            if not line:
+                continue
+            if line[:10].lower() == "user-agent":
+                if self.in_rules:  # a new group starts
+                    seen = self.seen = set()
+                    self.in_rules = False
+                out.append(line)
+                continue
+            self.in_rules = True
+            if line in seen:
+                continue
+            seen.add(line)
+            if len(seen) > self.max_rules:
+                raise TooManyRules(f"robots.txt has over {self.max_rules} distinct rules in "
+                                   "one group: treated as disallow-all")
+            out.append(line)
+
+    def text(self) -> str:
+        return "\n".join(self.out)
+
+
+def compact_rules(text: str, max_rules: int = MAX_RULES_PER_GROUP) -> str:
+    """``text`` with repeated rule lines dropped within each group (RFC 9309 section 2.2:
+    a repeated rule adds nothing to its group), so a file of one line repeated 30,000
+    times parses and matches as one rule. Raises ``TooManyRules`` past ``max_rules``
+    distinct rules in one group. Comments and blank lines are dropped too."""
+    work = _Compactor(max_rules)
+    work.feed(text.splitlines())
+    return work.text()
+
+
+async def compact_rules_async(text: str, max_rules: int = MAX_RULES_PER_GROUP,
+                              slice_lines: int = 2048) -> str:
+    """``compact_rules`` on the event loop, letting other tasks run between slices of
+    ``slice_lines`` lines (about a millisecond each). Not in a thread: CPU-bound Python in
+    a thread makes every socket call of the event loop wait for the interpreter lock."""
+    work = _Compactor(max_rules)
+    lines = text.splitlines()
+    for start in range(0, len(lines), slice_lines):
+        work.feed(lines[start:start + slice_lines])
+        if start + slice_lines < len(lines):
+            await asyncio.sleep(0)
+    return work.text()
+
+
+def parse_rules(body: bytes) -> tuple[Protego, int]:
+    """Parse robots.txt bytes (UTF-8, RFC 9309 section 2.3; bad bytes replaced), after
+    ``compact_rules``; returns the parser and the length of the text it holds."""
+    text = compact_rules(body.decode("utf-8", errors="replace"))
+    return Protego.parse(text), len(text)
 
 
 class RobotsCache:
@@ -117,13 +190,33 @@ class RobotsCache:
             _, old = self._rules.popitem(last=False)
             self._bytes -= old.size
 
-    async def _parse(self, body: bytes) -> Protego:
+    async def _parse(self, text: str) -> Protego:
+        """Protego's parse of compacted rules, in a worker thread under the time limit
+        (at most ``MAX_RULES_PER_GROUP`` rules per group: tens of milliseconds)."""
         if self._executor is None:
             self._executor = ThreadPoolExecutor(self._parse_workers,
                                                 thread_name_prefix="cascade-robots")
         loop = asyncio.get_running_loop()
-        return await asyncio.wait_for(loop.run_in_executor(self._executor, parse_rules, body),
-                                      self.parse_timeout_s)
+        return await asyncio.wait_for(loop.run_in_executor(self._executor, Protego.parse,
+                                                           text), self.parse_timeout_s)
+
+    async def allows(self, rules: RobotsRules, url: str, agent: str) -> tuple[bool, str]:
+        """Whether ``rules`` let ``agent`` fetch ``url``, and why. Matching costs time in
+        proportion to the number of rules (a large file has tens of thousands), so a
+        large rule set is matched in the worker threads, under the parse time limit."""
+        if rules.parser is None or rules.size <= _INLINE_MATCH_SIZE:
+            return rules.allows(url, agent), rules.detail
+        if self._executor is None:
+            self._executor = ThreadPoolExecutor(self._parse_workers,
+                                                thread_name_prefix="cascade-robots")
+        loop = asyncio.get_running_loop()
+        try:
+            allowed = await asyncio.wait_for(
+                loop.run_in_executor(self._executor, rules.allows, url, agent),
+                self.parse_timeout_s)
+        except TimeoutError:
+            return False, f"robots.txt rules took over {self.parse_timeout_s} s to match"
+        return allowed, rules.detail
 
     async def interpret(self, status: int | None, body: bytes, detail: str) -> RobotsRules:
         """``interpret``, with the parse off the event loop and under its time limit."""
@@ -131,13 +224,17 @@ class RobotsCache:
             return interpret(status, body, detail)
         now = time.monotonic()
         try:
-            parser = await self._parse(body)
+            text = await compact_rules_async(body.decode("utf-8", errors="replace"))
+            parser = await self._parse(text)
+            kept = len(text)
         except TimeoutError:
             return RobotsRules("disallow-all", None,
                                f"robots.txt parse took over {self.parse_timeout_s} s",
                                now, cache="never")
+        except TooManyRules as exc:
+            return RobotsRules("disallow-all", None, str(exc), now)
         return RobotsRules("parsed", parser, "robots.txt parsed", now,
-                           size=256 + _MEMORY_PER_TEXT_BYTE * len(body))
+                           size=256 + _MEMORY_PER_TEXT_BYTE * kept)
 
     async def rules(self, origin: str, load: RobotsLoader) -> RobotsRules:
         cached = self._fresh(origin)
@@ -182,7 +279,11 @@ def interpret(status: int | None, body: bytes, detail: str) -> RobotsRules:
     if 400 <= status < 500:
         return RobotsRules("allow-all", None, f"robots.txt status {status}: no rules", now)
     if 200 <= status < 300:
-        return RobotsRules("parsed", parse_rules(body), "robots.txt parsed", now,
-                           size=256 + _MEMORY_PER_TEXT_BYTE * len(body))
+        try:
+            parser, kept = parse_rules(body)
+        except TooManyRules as exc:
+            return RobotsRules("disallow-all", None, str(exc), now)
+        return RobotsRules("parsed", parser, "robots.txt parsed", now,
+                           size=256 + _MEMORY_PER_TEXT_BYTE * kept)
     return RobotsRules("disallow-all", None, f"robots.txt status {status}", now,
                        cache="brief")

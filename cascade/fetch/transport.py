@@ -16,7 +16,7 @@ the matching public httpx exceptions, the httpcore one kept as ``__cause__``, as
 ``tests/test_fetch_hostile.py`` proves the pin holds.
 
 Every stream the backend opens counts its reads (``wire.CountingStream``), so the fetcher's
-byte caps hold for what really crosses the socket. Connections are pooled per checked
+byte caps hold for what really crosses the socket. Connections are pooled per origin and checked
 address: a keep-alive connection is reused only for a request pinned to the same address,
 so an origin whose DNS answer changed between two fetches never rides on the old socket.
 """
@@ -142,7 +142,8 @@ class _ResponseStream(httpx.AsyncByteStream):
 
 class PinnedTransport(httpx.AsyncBaseTransport):
     """An httpx transport whose connection pools connect through ``PinnedBackend``, one
-    pool per checked address (at most ``max_pools``, least recently used closed first);
+    pool per origin and checked address (at most ``max_pools`` idle ones kept, least
+    recently used closed first);
     no proxy, no environment settings, HTTP/1.1. ``backend.connects`` records each
     connect, for tests."""
 
@@ -184,7 +185,11 @@ class PinnedTransport(httpx.AsyncBaseTransport):
     async def handle_async_request(self, request: httpx.Request) -> httpx.Response:
         """Send ``request`` over the pinned address's pool; the body is left to stream."""
         pin = _PIN.get()
-        address = pin.address if pin is not None else ""
+        # one pool per origin and checked address: a connection is only ever reused for
+        # its own origin, and small pools keep httpcore's per-request bookkeeping (linear
+        # in the pool's connections) short when many hosts share one address
+        address = (f"{request.url.raw_scheme.decode()}://{request.url.raw_host.decode()}:"
+                   f"{request.url.port}@{pin.address if pin is not None else ''}")
         core_request = httpcore.Request(
             method=request.method,
             url=httpcore.URL(scheme=request.url.raw_scheme, host=request.url.raw_host,
