@@ -38,6 +38,8 @@ URL_DATA    = open-directory-hosts domain-categories
 bench: $(VENV)/.installed-bench
 	mkdir -p out
 	$(BENCH) benchmarks/fetch.py --json out/fetch.json
+	$(BENCH) benchmarks/fetch.py --mode mixed --json out/fetch-mixed.json
+	$(BENCH) benchmarks/service.py --json out/service.json
 	@sets=""; for d in $(URL_DATA); do \
 	  if [ -d "$(DATA)/$$d" ]; then sets="$$sets$$d,"; \
 	  else echo "url_model: skipping $$d ($(DATA)/$$d not found)"; fi; \

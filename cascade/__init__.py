@@ -44,6 +44,8 @@ _LAZY = {
     "StorePolicy": "cascade.store",
     "run_night": "cascade.batch",
     "NightOptions": "cascade.batch",
+    "Triage": "cascade.service",
+    "TriagePolicy": "cascade.service",
     "Stage": "cascade.verdict",
     "Reason": "cascade.verdict",
     "Fetcher": "cascade.fetch",
