@@ -1,6 +1,7 @@
 """Input checks shared by metrics, the report, the planner and fusion: one set of rules, one
 wording of errors. Each check returns the array in the dtype the caller computes with, or
-raises ``ValueError`` saying what is wrong (a caller's mistake, exit code 2 in the CLI)."""
+raises ``ValueError`` saying what is wrong (a caller's mistake in the library; in the CLI
+these checks run on data cascade built itself, so one failing there is a bug, exit 1)."""
 
 from __future__ import annotations
 

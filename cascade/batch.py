@@ -82,11 +82,13 @@ def _bad_kind(reason: str) -> str:
 
 
 def read_log(path: str | Path, stats: ReadStats, fmt: str | None = None,
-             say: Callable[[str], None] | None = None) -> dict[str, _LogEntry]:
+             say: Callable[[str], None] | None = None,
+             progress: bool | None = None) -> dict[str, _LogEntry]:
     """Normalized URL -> its key and summed lookups, streaming the log; bad lines and bad
-    URLs are counted in ``stats`` (samples kept) and skipped."""
+    URLs are counted in ``stats`` (samples kept) and skipped. ``progress`` as
+    ``NightOptions.progress`` (None: a bar on a terminal only)."""
     entries: dict[str, _LogEntry] = {}
-    progress = Progress(label="reading log", enabled=None)
+    bar = Progress(label="reading log", enabled=progress)
     for rec in read_records(path, fmt=fmt, stats=stats):
         try:
             key = normalize(rec.url)
@@ -99,8 +101,8 @@ def read_log(path: str | Path, stats: ReadStats, fmt: str | None = None,
             entries[key.url] = _LogEntry(key, rec.count)
         else:
             entry.count += rec.count
-        progress.update()
-    progress.close()
+        bar.update()
+    bar.close()
     return entries
 
 
@@ -182,7 +184,7 @@ def _run_night(bundle: ModelBundle, store: VerdictStore, log: str | Path, out_di
         tell(f"run {run_id} is already done; writing its outputs again")
     started = time.perf_counter()
     stats = ReadStats()
-    entries = read_log(log, stats, fmt=log_format, say=tell)
+    entries = read_log(log, stats, fmt=log_format, say=tell, progress=opts.progress)
     tell(f"log: {stats.lines} lines, {len(entries)} distinct URLs, {stats.bad} bad lines")
     queued = _add_queued(store, entries) if opts.use_refine_queue else []
     if queued:

@@ -252,10 +252,10 @@ def plan(
     overrun a limit is left out with that limit as its reason and smaller ones may still
     fit. URLs whose expected gain is not above ``min_gain`` are never fetched.
 
-    Without a cost model (a URL-only model directory) the gain falls back to the calibrated
+    Without a fetch-value model (a URL-only model directory) the gain falls back to the calibrated
     chance that the URL verdict is wrong times the expected cost of that mistake, i.e.
     lowest-confidence-first weighted by cost (``costs``, per category; default all 1)
-    and lookups. ``history`` (what the store knows of each domain) feeds the cost model's
+    and lookups. ``history`` (what the store knows of each domain) feeds the fetch-value model's
     domain features; without it every URL is a first visit.
     """
     n = len(urls)

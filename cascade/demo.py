@@ -40,7 +40,7 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
     (also written as report.json), with the budget report under ``out/budget-report``.
 
     Train (weeks before a time cut): URL model, page model (saved pages of the labelled
-    rows), fusion and cost model. Night run (weeks after, new domains only): score every
+    rows), fusion and fetch-value model. Night run (weeks after, new domains only): score every
     URL, plan fetches under the budget, fetch the plan from the loopback site farm through
     the sandboxed fetcher, fuse. Measure: every held-out URL is also fetched once so the
     report can show what each budget would have bought.

@@ -48,7 +48,7 @@ _FLOOR = 1e-12
 @dataclass(frozen=True)
 class DomainHistory:
     """What the verdict store knows about a registered domain: how many of its URLs have a
-    page-stage verdict, by category. Used as cost-model features (a domain whose pages all
+    page-stage verdict, by category. Used as fetch-value-model features (a domain whose pages all
     came back as one category makes a fetch of another of its URLs worth less)."""
 
     counts: Mapping[str, Mapping[int, int]] = field(default_factory=dict)
@@ -269,7 +269,8 @@ def _cost_if_wrong(pu: np.ndarray, c: np.ndarray) -> np.ndarray:
 
 
 def confidence_gain(url_proba: np.ndarray, costs: np.ndarray) -> dict[str, np.ndarray]:
-    """The no-cost-model estimate: every fetch fixes a wrong verdict and breaks nothing."""
+    """The estimate without a fetch-value model: every fetch fixes a wrong verdict and
+    breaks nothing."""
     pu = np.atleast_2d(np.asarray(url_proba, dtype=np.float64))
     p_wrong = 1.0 - pu.max(axis=1)
     return {"gain": p_wrong * _cost_if_wrong(pu, np.asarray(costs, dtype=np.float64)),

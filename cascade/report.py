@@ -2,10 +2,10 @@
 
 Inputs are arrays for the same labelled rows: the true class, the URL model's probabilities,
 the fused probabilities the row would get if its page were fetched (the URL's own where the
-fetch failed or the page was thin), the cost model's expected gain, and optionally lookup
+fetch failed or the page was thin), the fetch-value model's expected gain, and optionally lookup
 counts. Fetch strategies compared at every budget, all on the same rows:
 
-- ``planner``: cascade's cost model (highest expected gain first);
+- ``planner``: cascade's fetch-value model (highest expected gain first);
 - ``lowest-confidence``: the URL model's least confident verdicts first;
 - ``random``: a uniform random order (mean over seeds);
 - ``oracle``: fetches exactly the URLs whose fetch fixes the verdict, most valuable first,
@@ -80,7 +80,7 @@ def strategy_orders(y: Any, url_proba: Any, fused_proba: Any, gain: Any,
                     metric: str = "accuracy") -> dict[str, np.ndarray]:
     """Row order in which each strategy fetches. The oracle's order lists only its fixes.
 
-    ``gain`` is the cost model's expected gain per lookup; the planner ranks by gain times
+    ``gain`` is the fetch-value model's expected gain per lookup; the planner ranks by gain times
     lookup count, as ``cascade.budget.plan`` does. Lowest-confidence ignores counts. The
     oracle ranks its fixes by what each is worth to ``metric``: lookups for "accuracy",
     lookups x cost of the true category for "cost_weighted_error"."""
