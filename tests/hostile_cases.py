@@ -11,11 +11,13 @@ Bounded: every endless or slow response stops by itself within a minute.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import gzip
 import os
 import socket
+import ssl
 import threading
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
 from urllib.parse import unquote
 
 from cascade.scenario.site_farm import FarmRequest, Reply, SiteFarm
@@ -209,3 +211,38 @@ class CountingListener:
         self._stop.set()
         self._thread.join(2)
         self.sock.close()
+
+
+@contextlib.contextmanager
+def tls_page_server(server_ctx: ssl.SSLContext, read_timeout_s: float = 5.0) -> Iterator[int]:
+    """A one-page HTTPS server on 127.0.0.1 with ``server_ctx``'s certificate; yields its
+    port. Handshakes the client refuses are ignored; the accept loop polls a stop event."""
+    listener = socket.create_server(("127.0.0.1", 0))
+    stop = threading.Event()
+
+    def serve() -> None:
+        listener.settimeout(0.2)  # a bounded poll of the stop event
+        while not stop.is_set():
+            try:
+                conn, _ = listener.accept()
+            except OSError:
+                continue
+            try:
+                with server_ctx.wrap_socket(conn, server_side=True) as tls:
+                    tls.settimeout(read_timeout_s)
+                    tls.recv(65536)
+                    body = b"<p>secure page</p>"
+                    tls.sendall(b"HTTP/1.1 200 OK\r\nContent-Type: text/html\r\n"
+                                b"Content-Length: %d\r\nConnection: close\r\n\r\n%s"
+                                % (len(body), body))
+            except (ssl.SSLError, OSError):
+                pass
+
+    thread = threading.Thread(target=serve, daemon=True)
+    thread.start()
+    try:
+        yield listener.getsockname()[1]
+    finally:
+        stop.set()
+        thread.join(5)
+        listener.close()

@@ -17,11 +17,11 @@ import ssl
 import subprocess
 import sys
 import textwrap
-import threading
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from hostile_cases import tls_page_server
 
 from cascade.fetch import Fetcher, FetchOutcome, FetchPolicy
 from cascade.fetch.tls import sandbox_ssl_context
@@ -44,35 +44,8 @@ def tls_server(ca) -> Iterator[int]:
     ``ca``; yields its port. Handshakes the client refuses are ignored."""
     server_ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)  # not create_default_context
     ca.issue_cert(TLS_HOST).configure_cert(server_ctx)
-    listener = socket.create_server(("127.0.0.1", 0))
-    stop = threading.Event()
-
-    def serve() -> None:
-        listener.settimeout(0.2)  # a bounded poll of the stop event
-        while not stop.is_set():
-            try:
-                conn, _ = listener.accept()
-            except OSError:
-                continue
-            try:
-                with server_ctx.wrap_socket(conn, server_side=True) as tls:
-                    tls.settimeout(5)
-                    tls.recv(65536)
-                    body = b"<p>secure page</p>"
-                    tls.sendall(b"HTTP/1.1 200 OK\r\nContent-Type: text/html\r\n"
-                                b"Content-Length: %d\r\nConnection: close\r\n\r\n%s"
-                                % (len(body), body))
-            except (ssl.SSLError, OSError):
-                pass
-
-    thread = threading.Thread(target=serve, daemon=True)
-    thread.start()
-    try:
-        yield listener.getsockname()[1]
-    finally:
-        stop.set()
-        thread.join(5)
-        listener.close()
+    with tls_page_server(server_ctx) as port:
+        yield port
 
 
 # ---------------------------------------------------------------- the TLS context

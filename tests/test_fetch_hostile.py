@@ -12,14 +12,13 @@ import asyncio
 import dataclasses
 import socket
 import ssl
-import threading
 import time
 
 import h11
 import httpcore
 import httpx
 import pytest
-from hostile_cases import CountingListener, HostileSiteFarm
+from hostile_cases import CountingListener, HostileSiteFarm, tls_page_server
 
 from cascade.fetch import Fetcher, FetchOutcome, FetchPolicy, RetryPolicy, SyncFetcher
 from cascade.fetch.fetcher import _head_too_large, _tls_failure
@@ -376,31 +375,7 @@ def test_tls_with_an_untrusted_certificate_fails_and_trusted_one_works(farm) -> 
     cert = ca.issue_cert("secure.test")
     server_ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
     cert.configure_cert(server_ctx)
-    listener = socket.create_server(("127.0.0.1", 0))
-    port = listener.getsockname()[1]
-    stop = threading.Event()
-
-    def serve() -> None:
-        listener.settimeout(0.2)
-        while not stop.is_set():
-            try:
-                conn, _ = listener.accept()
-            except OSError:
-                continue
-            try:
-                with server_ctx.wrap_socket(conn, server_side=True) as tls:
-                    tls.settimeout(2)
-                    tls.recv(65536)
-                    body = b"<p>secure page</p>"
-                    tls.sendall(b"HTTP/1.1 200 OK\r\nContent-Type: text/html\r\n"
-                                b"Content-Length: %d\r\nConnection: close\r\n\r\n%s"
-                                % (len(body), body))
-            except (ssl.SSLError, OSError):
-                pass
-
-    thread = threading.Thread(target=serve, daemon=True)
-    thread.start()
-    try:
+    with tls_page_server(server_ctx, read_timeout_s=2) as port:
         pol = FetchPolicy(ports=(port,), allow_networks=("127.0.0.1/32",), deadline_s=DEADLINE,
                           obey_robots=False)
         resolver = StaticResolver({"secure.test": ["127.0.0.1"], "other.test": ["127.0.0.1"]})
@@ -418,10 +393,6 @@ def test_tls_with_an_untrusted_certificate_fails_and_trusted_one_works(farm) -> 
         # the certificate is checked against the host name, not the pinned address
         wrong_name = asyncio.run(run(client_ctx, "other.test"))
         assert wrong_name.outcome is FetchOutcome.TLS_ERROR
-    finally:
-        stop.set()
-        thread.join(2)
-        listener.close()
 
 
 def _chain(*errors: BaseException) -> BaseException:
