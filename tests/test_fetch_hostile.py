@@ -25,6 +25,7 @@ from cascade.fetch.fetcher import _head_too_large, _tls_failure
 from cascade.fetch.resolver import StaticResolver
 from cascade.fetch.transport import PinnedBackend, PinnedTransport
 from cascade.scenario import generate_telemetry
+from cascade.urls import normalize
 
 DEADLINE = 3.0
 
@@ -500,3 +501,22 @@ def test_a_resolver_that_raises_anything_is_a_dns_error(farm, policy) -> None:
 
     result, _ = fetch(farm, policy, farm.url("site.test", "/_hostile/page"), BrokenResolver())
     assert result.outcome is FetchOutcome.DNS_ERROR
+
+
+def test_many_origins_past_the_pool_bound_all_fetch(farm, policy) -> None:
+    # one pool per origin and address, at most max_pools idle ones kept: fetching many
+    # origins at once evicts pools while others are in use, and no fetch may notice
+    hosts = sorted({normalize(r.url).host for r in farm.records})[:30]
+
+    async def run():
+        async with Fetcher(dataclasses.replace(policy, obey_robots=False),
+                           farm.resolver(EXTRA_DNS)) as f:
+            await f.transport.aclose()
+            f.transport = PinnedTransport(httpx.Limits(max_connections=8), max_pools=3)
+            urls = [farm.url(h, "/") for h in hosts] * 2
+            return await asyncio.gather(*(f.fetch(u) for u in urls))
+
+    results = asyncio.run(run())
+    assert all(r.outcome is not FetchOutcome.BAD_RESPONSE for r in results), \
+        [r.detail for r in results if r.outcome is FetchOutcome.BAD_RESPONSE][:3]
+    assert sum(r.ok for r in results) >= len(results) // 2

@@ -175,12 +175,16 @@ class PinnedTransport(httpx.AsyncBaseTransport):
         return pool
 
     async def _evict(self) -> None:
-        """Close the least recently used idle pools beyond ``max_pools``."""
+        """Close the least recently used idle pools beyond ``max_pools``. The pools are
+        taken out first and closed after, so other tasks never see a half-evicted map."""
+        idle = []
         for address in list(self._pools):
             if len(self._pools) <= self._max_pools:
-                return
+                break
             if self._in_use.get(address, 0) == 0:
-                await self._pools.pop(address).aclose()
+                idle.append(self._pools.pop(address))
+        for pool in idle:
+            await pool.aclose()
 
     async def handle_async_request(self, request: httpx.Request) -> httpx.Response:
         """Send ``request`` over the pinned address's pool; the body is left to stream."""
