@@ -29,8 +29,10 @@ test: $(VENV)/.installed
 # Every benchmark in benchmarks/, each writing out/NAME.json. The shared data sets live in
 # $(DATA) (../shared/data unless CASCADE_SHARED_DATA says otherwise); a benchmark, or a data
 # set of one, whose data is not there is skipped with a message. Order: the quick ones
-# first; page_model before budget (it saves the per-split arrays budget reads); the
-# hyper-parameter sweep, the slowest and only for docs/url-model-sweep.md, last.
+# first; batch (the nightly job at scale; trains the demo bundle itself, about 9 minutes,
+# no shared data) after them; page_model before budget (it saves the per-split arrays
+# budget reads); the hyper-parameter sweep, the slowest and only for
+# docs/url-model-sweep.md, last.
 DATA       ?= $(if $(CASCADE_SHARED_DATA),$(CASCADE_SHARED_DATA),../shared/data)
 BENCH       = CASCADE_SHARED_DATA=$(abspath $(DATA)) $(BIN)/python
 URL_DATA    = open-directory-hosts domain-categories
@@ -40,6 +42,7 @@ bench: $(VENV)/.installed-bench
 	$(BENCH) benchmarks/fetch.py --json out/fetch.json
 	$(BENCH) benchmarks/fetch.py --mode mixed --json out/fetch-mixed.json
 	$(BENCH) benchmarks/service.py --json out/service.json
+	$(BENCH) benchmarks/batch.py --json out/batch.json
 	@sets=""; for d in $(URL_DATA); do \
 	  if [ -d "$(DATA)/$$d" ]; then sets="$$sets$$d,"; \
 	  else echo "url_model: skipping $$d ($(DATA)/$$d not found)"; fi; \
