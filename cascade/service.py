@@ -233,7 +233,7 @@ class _RefineQueue:
             with VerdictStore.open(self.store_path, policy=self.policy.store_policy) as store:
                 n = store.enqueue_refine((u, c, r) for u, (c, r) in batch.items())
                 self.length = store.queue_length()
-        except (StoreError, OSError, Exception) as exc:  # noqa: BLE001 - keep serving
+        except Exception as exc:  # noqa: BLE001 - a store that cannot be written: keep serving
             log.warning("refine queue: could not write %d URLs to %s: %s; kept in memory",
                         len(batch), self.store_path, exc)
             with self.lock:  # put them back, within the bound
