@@ -46,9 +46,11 @@ __all__ = [
 CASE_PREFIX = "/_raw/"
 SNDBUF = 16 << 10  # asked for; Linux doubles it (socket(7), SO_SNDBUF)
 #: What a server may have handed to its socket beyond what the client read: the server's
-#: send queue (2 x SNDBUF on Linux) plus the client's receive queue. Measured on Linux
-#: loopback at about 100 KiB, with a client that pauses before it hangs up; 512 KiB leaves
-#: room for a busy machine and is still far below what any unbounded case sends.
+#: send queue (2 x SNDBUF on Linux) plus the client's receive queue, which the fetcher
+#: bounds with ``FetchPolicy.receive_buffer_bytes`` (128 KiB, doubled by Linux: 256 KiB).
+#: Without that bound Linux auto-tunes the client's queue up to tcp_rmem's maximum (32 MiB
+#: on this machine) and a run once saw 1.2 MB sent against a 500 KiB cap. 512 KiB leaves
+#: room for both queues and is still far below what any unbounded case sends.
 SOCKET_SLACK = 512 << 10
 MAX_REQUEST_HEAD = 16 << 10
 MAX_EXCHANGE_BYTES = 64 << 20

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import asyncio
 import contextvars
+import socket
 import ssl
 import time
 from collections.abc import AsyncIterator, Awaitable, Iterable, Iterator
@@ -111,7 +112,10 @@ class Fetcher:
         limits = httpx.Limits(max_connections=self.policy.concurrency,
                               max_keepalive_connections=self.policy.concurrency,
                               keepalive_expiry=5.0)
-        self.transport = PinnedTransport(limits, ssl_context=ssl_context)
+        self.transport = PinnedTransport(
+            limits, ssl_context=ssl_context,
+            socket_options=[(socket.SOL_SOCKET, socket.SO_RCVBUF,
+                             self.policy.receive_buffer_bytes)])
         self._global = asyncio.Semaphore(self.policy.concurrency)
         self._started_this_turn = 0
         self._hosts: dict[str, _HostState] = {}

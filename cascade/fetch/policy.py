@@ -31,6 +31,9 @@ class FetchPolicy:
     max_encoding_layers: int = 2  # e.g. "gzip" is 1; "gzip, br" is 2
     max_header_bytes: int = 32 << 10  # bytes read per hop before the final header block ends
     max_body_chunks: int = 8192  # pieces of one body: tiny chunks cost CPU, not bytes
+    # the kernel's receive queue of one connection (SO_RCVBUF, which Linux doubles): what a
+    # server can push beyond a cap before the fetcher hangs up, and kernel memory per fetch
+    receive_buffer_bytes: int = 128 << 10
     content_types: tuple[str, ...] = DEFAULT_CONTENT_TYPES
     user_agent: str = "cascade-fetcher/0.1 (URL categorization; operator not configured)"
     obey_robots: bool = True
@@ -56,7 +59,7 @@ class FetchPolicy:
             if not getattr(self, name) >= 0:
                 raise ValueError(f"FetchPolicy.{name} must not be negative")
         for name in ("max_bytes", "max_decoded_bytes", "max_header_bytes", "max_body_chunks",
-                     "concurrency",
+                     "receive_buffer_bytes", "concurrency",
                      "per_host_concurrency", "robots_max_bytes", "robots_cache_bytes"):
             if getattr(self, name) < 1:
                 raise ValueError(f"FetchPolicy.{name} must be at least 1")

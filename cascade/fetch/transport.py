@@ -148,13 +148,15 @@ class PinnedTransport(httpx.AsyncBaseTransport):
     connect, for tests."""
 
     def __init__(self, limits: httpx.Limits, ssl_context: ssl.SSLContext | None = None,
-                 max_pools: int = 256) -> None:
+                 max_pools: int = 256,
+                 socket_options: typing.Sequence[tuple[int, int, int]] = ()) -> None:
         from cascade.fetch.tls import sandbox_ssl_context
 
         self.backend = PinnedBackend()
         self._limits = limits
         self._ssl_context = ssl_context or sandbox_ssl_context()
         self._max_pools = max_pools
+        self._socket_options = list(socket_options)
         self._pools: OrderedDict[str, httpcore.AsyncConnectionPool] = OrderedDict()
         self._in_use: dict[str, int] = {}
 
@@ -169,6 +171,7 @@ class PinnedTransport(httpx.AsyncBaseTransport):
                 http1=True,
                 http2=False,
                 network_backend=self.backend,
+                socket_options=self._socket_options or None,
             )
             self._pools[address] = pool
         self._pools.move_to_end(address)
