@@ -1,8 +1,10 @@
 """URL model against its peers, in one run on one machine: accuracy and speed.
 
-Peers: fastText's supervised classifier (character subwords, minn/maxn) trained on the same
-split, and a plain scikit-learn pipeline (HashingVectorizer over character n-grams + an
-SGD-trained linear model). Data: the shared open-directory hosts and domain categories
+Peers: fastText's supervised classifier (character subwords, minn 3 / maxn 6) trained on
+the same split, and two plain scikit-learn pipelines (HashingVectorizer over character
+3-6-grams, and over word-bounded 1-5-grams, + an SGD-trained linear model). Every system's
+training seconds are measured in the same run; the ratios are ours over the best peer.
+Data: the shared open-directory hosts and domain categories
 (fixed 80/20 split by registered domain, seed 0) and the invented demo scenario (split by
 time, new domains only on the test side).
 
@@ -134,7 +136,7 @@ def run_fasttext(train, ytrain, test, ytest, classes, seed: int, autotune_s: int
         return {"skipped": "fasttext not installed (pip install -e '.[bench]')"}
     rows = list(zip(train, ytrain, strict=True))
     with tempfile.TemporaryDirectory() as tmp:
-        settings = dict(minn=2, maxn=5, dim=100, epoch=25, lr=0.5, wordNgrams=1)
+        settings = dict(minn=3, maxn=6, dim=100, epoch=25, lr=0.5, wordNgrams=1)
         tuned = False
         if autotune_s > 0:
             keys = [normalize(u) for u in train]
@@ -181,22 +183,28 @@ def run_fasttext(train, ytrain, test, ytest, classes, seed: int, autotune_s: int
     return out
 
 
-def run_sklearn(train, ytrain, test, ytest, classes, seed: int) -> dict:
+def run_sklearn(train, ytrain, test, ytest, classes, seed: int, analyzer: str = "char",
+                ngram_range: tuple[int, int] = (3, 6)) -> dict:
     from sklearn.feature_extraction.text import HashingVectorizer
     from sklearn.linear_model import SGDClassifier
     from sklearn.pipeline import make_pipeline
 
     pipe = make_pipeline(
-        HashingVectorizer(analyzer="char_wb", ngram_range=(1, 5), n_features=2**20),
+        HashingVectorizer(analyzer=analyzer, ngram_range=ngram_range, n_features=2**20),
         SGDClassifier(loss="log_loss", alpha=1e-5, max_iter=30, tol=None, random_state=seed),
     )
     started = time.perf_counter()
     pipe.fit(train, ytrain)
     fit_s = time.perf_counter() - started
     out = {"fit_seconds": round(fit_s, 1),
-           "settings": "HashingVectorizer(char_wb, 1-5, 2**20) + SGDClassifier(log_loss, "
-                       "alpha=1e-5, 30 epochs)"}
+           "settings": f"HashingVectorizer({analyzer}, {ngram_range[0]}-{ngram_range[1]}, "
+                       "2**20) + SGDClassifier(log_loss, alpha=1e-5, 30 epochs)"}
     out.update(_scores(ytest, list(pipe.predict(test)), classes))
+    index = {c: i for i, c in enumerate(pipe.classes_)}
+    known = [i for i, c in enumerate(ytest) if c in index]
+    proba = pipe.predict_proba([test[i] for i in known])
+    out["ece_15"] = round(expected_calibration_error(
+        np.array([index[ytest[i]] for i in known]), proba), 4)
     secs = _best_of(lambda: pipe.predict_proba(test))
     out["batch_per_s"] = round(len(test) / secs, 0)
     out.update(_latency(lambda u: pipe.predict_proba([u]), test, n=300))
@@ -211,10 +219,10 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--balanced", action="store_true",
                         help="also measure our model with class_balance=0.5")
-    parser.add_argument("--fasttext-autotune-s", type=int, default=120,
+    parser.add_argument("--fasttext-autotune-s", type=int, default=0,
                         help="seconds of fastText autotune per data set (0: fixed settings)")
     args = parser.parse_args()
-    params = dict(ngram_range=(1, 4), n_features=2**20, C=20.0, seed=args.seed)
+    params = {"seed": args.seed}  # the defaults, as a user gets them
     result = {"benchmark": "url-model", "machine": machine(),
               "our_params": {k: (list(v) if isinstance(v, tuple) else v)
                              for k, v in params.items()},
@@ -239,30 +247,35 @@ def main() -> None:
         entry["fasttext"] = run_fasttext(train, ytrain, test, ytest, classes, args.seed,
                                          args.fasttext_autotune_s)
         print(f"[{name}] scikit-learn", file=sys.stderr, flush=True)
-        entry["sklearn_hashing_sgd"] = run_sklearn(train, ytrain, test, ytest, classes,
-                                                   args.seed)
-        ours, ft = entry["ours"], entry["fasttext"]
-        if "skipped" not in ft:
-            entry["ratios_ours_over_fasttext"] = {
-                "macro_f1": round(ours["macro_f1"] / ft["macro_f1"], 3),
-                "accuracy": round(ours["accuracy"] / ft["accuracy"], 3),
-                "batch_throughput": round(ours["batch_per_s"] / ft["batch_per_s"], 3),
-                "single_p50_latency": round(ours["p50_us"] / ft["p50_us"], 3),
-            }
-        sk = entry["sklearn_hashing_sgd"]
-        entry["ratios_ours_over_sklearn"] = {
-            "macro_f1": round(ours["macro_f1"] / sk["macro_f1"], 3),
-            "batch_throughput": round(ours["batch_per_s"] / sk["batch_per_s"], 3),
-            "single_p50_latency": round(ours["p50_us"] / sk["p50_us"], 3),
+        entry["sklearn_char_3_6"] = run_sklearn(train, ytrain, test, ytest, classes,
+                                                args.seed, "char", (3, 6))
+        entry["sklearn_char_wb_1_5"] = run_sklearn(train, ytrain, test, ytest, classes,
+                                                   args.seed, "char_wb", (1, 5))
+        ours = entry["ours"]
+        peers = {p: entry[p] for p in ("fasttext", "sklearn_char_3_6", "sklearn_char_wb_1_5")
+                 if "skipped" not in entry[p]}
+        best_f1 = max(peers, key=lambda p: peers[p]["macro_f1"])
+        fastest = min(peers, key=lambda p: peers[p]["fit_seconds"])
+        entry["ratios_ours_over_best_peer"] = {
+            "macro_f1": round(ours["macro_f1"] / peers[best_f1]["macro_f1"], 3),
+            "macro_f1_peer": best_f1,
+            "fit_seconds": round(ours["fit_seconds"] / max(peers[fastest]["fit_seconds"], 0.1),
+                                 3),
+            "fit_seconds_peer": fastest,
         }
+        sk = entry["sklearn_char_3_6"]
+        ft = entry["fasttext"]
         entry["targets"] = {
-            "macro_f1_at_least_fasttext": None if "skipped" in ft
-            else ours["macro_f1"] >= ft["macro_f1"],
+            "macro_f1_at_least_best_peer": ours["macro_f1"] >= peers[best_f1]["macro_f1"],
+            "fit_at_most_sklearn_char_3_6": ours["fit_seconds"] <= sk["fit_seconds"],
             "batch_at_least_fasttext": None if "skipped" in ft
             else ours["batch_per_s"] >= ft["batch_per_s"],
             "single_p50_at_most_50us": ours["p50_us"] <= 50.0,
+            "ece_at_most_0.04": ours["ece_15"] <= 0.04,
             "model_file_at_most_64MB": ours["model_file_bytes"] <= 64 * 2**20,
         }
+        if name == "open-directory-hosts":
+            entry["targets"]["macro_f1_at_least_0.40"] = ours["macro_f1"] >= 0.40
         result["datasets"][name] = entry
         print(f"[{name}] {entry}", file=sys.stderr, flush=True)
     write_json(result, args.json)

@@ -48,7 +48,8 @@ def train(
                                  group_by_domain=group_by_domain)
         say(f"holding out {len(split.test)} rows ({split.method}) to measure")
         model = clone(template).fit([keys[i] for i in split.train],
-                                    [labels[i] for i in split.train], taxonomy=taxonomy)
+                                    [labels[i] for i in split.train], taxonomy=taxonomy,
+                                    progress=say)
         if len(split.test):
             metrics = evaluate_proba(model.predict_proba([keys[i] for i in split.test]),
                                      [labels[i] for i in split.test], model.classes_,
@@ -65,4 +66,5 @@ def train(
                             page_model=page_model, folds=folds, seed=seed, progress=say)
         return bundle, metrics
     say(f"fitting on {len(keys)} rows")
-    return ModelBundle(clone(template).fit(keys, labels, taxonomy=taxonomy)), metrics
+    return ModelBundle(clone(template).fit(keys, labels, taxonomy=taxonomy,
+                                           progress=say)), metrics

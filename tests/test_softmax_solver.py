@@ -17,7 +17,7 @@ import scipy.sparse as sp
 from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import log_loss
 
-from cascade.models.softmax import fit_softmax
+from cascade.models.softmax import FitProgress, fit_softmax, resolve_jobs
 
 N_ROWS, N_COLUMNS, N_CLASSES = 300, 50, 3
 COEF_TOL = 1e-3  # max abs difference of any coefficient or centered intercept
@@ -103,3 +103,44 @@ def test_reported_objective_is_the_documented_one_over_c_times_total(problem) ->
     loss = -np.log(p[np.arange(N_ROWS), y])
     documented = C * float(weight @ loss) + 0.5 * float(np.sum(W.astype(np.float64) ** 2))
     assert info["objective"] == pytest.approx(documented / (C * weight.sum()), rel=1e-6)
+
+
+def test_the_result_does_not_depend_on_the_number_of_threads(problem) -> None:
+    # determinism (project rule): fixed row blocks summed in a fixed order
+    X, y, weight = problem
+    one = fit_softmax(X, y, N_CLASSES, C=2.0, sample_weight=weight, n_jobs=1)
+    two = fit_softmax(X, y, N_CLASSES, C=2.0, sample_weight=weight, n_jobs=2)
+    assert np.array_equal(one[0], two[0]) and np.array_equal(one[1], two[1])
+    assert one[2]["iterations"] == two[2]["iterations"]
+
+
+def test_it_runs_to_its_tolerance_and_says_so(problem) -> None:
+    X, y, _ = problem
+    _, _, info = fit_softmax(X, y, N_CLASSES, C=5.0, tol=1e-5)
+    assert info["converged"] and info["gradient_max"] <= 1e-5, info
+    _, _, capped = fit_softmax(X, y, N_CLASSES, C=5.0, tol=1e-9, max_iter=3)
+    assert not capped["converged"] and capped["iterations"] == 3
+    assert capped["stop"].startswith("max_iter")
+
+
+def test_a_warm_start_at_the_optimum_needs_almost_no_iterations(problem) -> None:
+    X, y, _ = problem
+    W, b, cold = fit_softmax(X, y, N_CLASSES, C=5.0, tol=1e-5)
+    _, _, warm = fit_softmax(X, y, N_CLASSES, C=5.0, tol=1e-5, init=(W, b))
+    assert warm["iterations"] <= 2 < cold["iterations"]
+
+
+def test_progress_is_reported_every_iteration_with_a_gradient_trend(problem) -> None:
+    X, y, _ = problem
+    seen: list[FitProgress] = []
+    _, _, info = fit_softmax(X, y, N_CLASSES, C=5.0, tol=1e-6, progress=seen.append)
+    assert [p.iteration for p in seen] == list(range(1, info["iterations"] + 1))
+    assert seen[-1].gradient == pytest.approx(info["gradient_max"])
+    assert any(p.eta_s is not None for p in seen)
+
+
+def test_resolve_jobs_follows_scikit_learns_meaning() -> None:
+    # scikit-learn glossary, n_jobs: None means 1, -1 all processors, -2 all but one
+    assert resolve_jobs(None) == 1
+    assert resolve_jobs(1) == 1
+    assert 1 <= resolve_jobs(-1) <= 4

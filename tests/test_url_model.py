@@ -234,3 +234,26 @@ def test_wrong_kind_is_refused(saved: Path) -> None:
 
     with pytest.raises(ModelFileError, match="not a 'page-model'"):
         load_model_dir(saved, "page-model")
+
+
+def test_fit_reports_progress_and_converges_by_default(data, monkeypatch) -> None:
+    import cascade.models.calibrated_linear as core
+
+    urls, labels = data
+    lines: list[str] = []
+    monkeypatch.setattr(core._FitMeter, "every_s", 0.0)  # a line per iteration, for the test
+    model = UrlModel(n_features=2**16).fit(urls[:400], labels[:400], progress=lines.append)
+    assert model.optimizer_["converged"], model.optimizer_
+    assert len(model.optimizer_["calibration_fits"]) == 3
+    assert any("fit 1 of 4" in line and "it/s" in line for line in lines)
+    assert any("fit 4 of 4 (final fit)" in line for line in lines)
+    assert lines[-1].startswith("UrlModel: 4 fits in")
+
+
+def test_an_iteration_cap_that_stops_the_fit_warns(data) -> None:
+    from sklearn.exceptions import ConvergenceWarning
+
+    urls, labels = data
+    with pytest.warns(ConvergenceWarning, match="max_iter=2"):
+        UrlModel(n_features=2**16, max_iter=2, calibration_folds=0).fit(urls[:200],
+                                                                          labels[:200])

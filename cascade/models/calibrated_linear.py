@@ -19,12 +19,14 @@ learned anything from it, as in use; ``fit_bundle`` stacks the fusion on them.
 from __future__ import annotations
 
 import time
-from collections.abc import Sequence
+import warnings
+from collections.abc import Callable, Sequence
 from typing import Any, ClassVar
 
 import numpy as np
 import scipy.sparse as sp
 from sklearn.base import BaseEstimator, ClassifierMixin
+from sklearn.exceptions import ConvergenceWarning
 
 from cascade.errors import ModelFileError, NotFittedError, TaxonomyError
 from cascade.models.calibration import fit_temperature, softmax
@@ -32,8 +34,8 @@ from cascade.models.explanation import ClassExplanation, Contribution, Explanati
 from cascade.models.folds import group_folds
 from cascade.models.linear import compact_table, pack_rows, unpack_rows
 from cascade.models.model_files import ModelFileMixin
-from cascade.models.params import Constraint, Interval, PowerOfTwo, check_params
-from cascade.models.softmax import fit_softmax
+from cascade.models.params import Constraint, Interval, OneOf, PowerOfTwo, check_params
+from cascade.models.softmax import FitProgress, fit_softmax
 from cascade.taxonomy import Taxonomy
 
 __all__ = ["ABSENT_CLASS_BIAS", "CalibratedLinearClassifier"]
@@ -44,12 +46,17 @@ ABSENT_CLASS_BIAS = -30.0
 
 class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator):
     """Base class; see the module docstring. Parameters common to every subclass:
-    ``n_features``, ``C``, ``max_iter``, ``min_count``, ``calibration_folds``, ``seed``."""
+    ``n_features``, ``C``, ``tol``, ``max_iter``, ``min_count``, ``calibration_folds``,
+    ``n_jobs``, ``seed``."""
 
     _param_rules: ClassVar[dict[str, Constraint]] = {
         "n_features": PowerOfTwo(16),
         "C": Interval(0, None, closed="neither"),
+        "tol": Interval(0, None, closed="neither"),
         "max_iter": Interval(1, None, integer=True),
+        "n_jobs": OneOf(test=lambda v: v is None or (isinstance(v, int)
+                                                     and not isinstance(v, bool) and v != 0),
+                        text="None or a non-zero whole number (-1: all cores)"),
         "min_count": Interval(1, None, integer=True),
         "calibration_folds": Interval(0, None, integer=True),
         "seed": Interval(0, 2**63 - 1, integer=True),
@@ -103,24 +110,37 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
 
     # ------------------------------------------------------------ fitting
     def _fit_linear(self, X: sp.csr_matrix, y: np.ndarray, weight: np.ndarray | None,
-                    rows: np.ndarray, n_classes: int) -> tuple[np.ndarray, np.ndarray, dict]:
-        W, b, info = fit_softmax(X[rows], y[rows], n_classes, C=self.C,
+                    rows: np.ndarray, n_classes: int,
+                    init: tuple[np.ndarray, np.ndarray] | None = None,
+                    progress: Callable[[FitProgress], None] | None = None
+                    ) -> tuple[np.ndarray, np.ndarray, dict]:
+        W, b, info = fit_softmax(X if rows.shape[0] == X.shape[0] else X[rows], y[rows],
+                                 n_classes, C=self.C,
                                  sample_weight=None if weight is None else weight[rows],
-                                 max_iter=self.max_iter, min_count=self.min_count)
+                                 max_iter=self.max_iter, tol=self.tol,
+                                 min_count=self.min_count, init=init, n_jobs=self.n_jobs,
+                                 progress=progress)
         b[np.bincount(y[rows], minlength=n_classes) == 0] = ABSENT_CLASS_BIAS
         return W, b, info
 
     def fit(self, X: Any, y: Sequence[str], *, taxonomy: Taxonomy | None = None,
             sample_weight: Sequence[float] | None = None,
             groups: Sequence[str] | None = None,
-            folds: Sequence[int] | np.ndarray | None = None) -> CalibratedLinearClassifier:
+            folds: Sequence[int] | np.ndarray | None = None,
+            progress: Callable[[str], None] | None = None) -> CalibratedLinearClassifier:
         """Learn weights and temperature from labelled items; returns ``self``.
 
         ``taxonomy`` fixes the category set and column order (labels outside it raise
         ``TaxonomyError``); without it the distinct labels are the categories. ``groups``
         keeps each group on one side of the calibration folds; ``folds`` gives the fold of
         each row directly (-1: never held out), as ``fit_bundle`` does so that the URL and
-        page models are held out on the same rows.
+        page models are held out on the same rows. ``progress`` receives a line every few
+        seconds: which fit, iteration, rate, gradient against its target, time left.
+
+        Every fit runs to convergence (largest gradient component below ``tol``); each
+        calibration fold starts from the previous fold's solution and the final fit from
+        their mean (warm starts: a strictly convex problem has one optimum, so the start
+        only changes how fast it is reached).
         """
         self._check_params()
         started = time.perf_counter()
@@ -156,19 +176,40 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
         oof = np.full((n, k), np.nan, dtype=np.float32)
         all_rows = np.arange(n)
         used_folds = 0
-        for f in range(int(fold.max()) + 1 if fold.size else 0):
+        fold_ids = [f for f in range(int(fold.max()) + 1 if fold.size else 0)
+                    if (fold == f).any() and len(np.unique(codes[fold != f])) >= 2]
+        meter = _FitMeter(progress, type(self).__name__, len(fold_ids) + 1)
+        start: tuple[np.ndarray, np.ndarray] | None = None
+        fold_solutions = []
+        fold_info = []
+        for f in fold_ids:
             held = fold == f
             train = all_rows[~held]
-            if not held.any() or len(np.unique(codes[train])) < 2:
-                continue
             Xf, _ = self._design(prepared, train)
-            W, b, _info = self._fit_linear(Xf, codes, weight, train, k)
+            W, b, finfo = self._fit_linear(Xf, codes, weight, train, k, init=start,
+                                           progress=meter.step(f"calibration fold "
+                                                               f"{used_folds + 1}"))
             oof[held] = np.asarray(Xf[held] @ W) + b
             used_folds += 1
+            start = (W, b)
+            fold_solutions.append((W, b))
+            fold_info.append({key: finfo[key] for key in ("iterations", "converged",
+                                                          "seconds")})
         seen = ~np.isnan(oof[:, 0])
         temperature = fit_temperature(oof[seen], codes[seen]) if seen.any() else 1.0
         X_all, state = self._design(prepared, None)
-        W, b, info = self._fit_linear(X_all, codes, weight, all_rows, k)
+        if fold_solutions:
+            start = (np.mean([w for w, _ in fold_solutions], axis=0),
+                     np.mean([b for _, b in fold_solutions], axis=0))
+        W, b, info = self._fit_linear(X_all, codes, weight, all_rows, k, init=start,
+                                      progress=meter.step("final fit"))
+        info = {**info, "calibration_fits": fold_info}
+        meter.done()
+        if not info["converged"]:
+            warnings.warn(f"{type(self).__name__}: the solver stopped at max_iter="
+                          f"{self.max_iter} before converging (largest gradient "
+                          f"{info['gradient_max']:.2g}, target tol={self.tol:g}); raise "
+                          "max_iter or lower C", ConvergenceWarning, stacklevel=2)
         for name, value in state.items():
             setattr(self, name, value)
         self.classes_ = classes
@@ -195,6 +236,7 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
 
     def _group_name(self) -> str:
         return "row"
+
 
     # ------------------------------------------------------------ scoring
     def _compact_weights(self) -> tuple[np.ndarray, np.ndarray]:
@@ -280,3 +322,47 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
         self.temperature_ = float(meta["calibration"]["temperature"])
         if not self.temperature_ > 0:
             raise ModelFileError(f"{where}: temperature must be positive")
+
+
+class _FitMeter:
+    """Turns solver iterations into a progress line every ``every_s`` seconds: which of the
+    ``fits`` runs, its iteration and rate, its gradient against the target, time left."""
+
+    every_s: ClassVar[float] = 2.0
+
+    def __init__(self, say: Callable[[str], None] | None, name: str, fits: int) -> None:
+        self.say, self.name, self.fits = say, name, fits
+        self.started = time.perf_counter()
+        self.fit_seconds: list[float] = []
+        self.index = 0
+        self.last = 0.0
+
+    def step(self, label: str) -> Callable[[FitProgress], None] | None:
+        if self.say is None:
+            return None
+        self.index += 1
+        fit_started = time.perf_counter()
+        if self.index > 1:
+            self.fit_seconds.append(fit_started - self._fit_started)
+        self._fit_started = fit_started
+        index, say = self.index, self.say
+
+        def report(p: FitProgress) -> None:
+            now = time.perf_counter()
+            if now - self.last < self.every_s:
+                return
+            self.last = now
+            rate = p.iteration / max(p.seconds, 1e-9)
+            later = self.fits - index  # fits after this one, guessed at the mean so far
+            mean_fit = (sum(self.fit_seconds) / len(self.fit_seconds)
+                        if self.fit_seconds else p.seconds + (p.eta_s or 0.0))
+            eta = None if p.eta_s is None else p.eta_s + later * mean_fit
+            left = "estimating time left" if eta is None else f"about {eta:.0f} s left"
+            say(f"{self.name} fit {index} of {self.fits} ({label}): iteration {p.iteration},"
+                f" {rate:.1f} it/s, gradient {p.gradient:.1e} (target {p.tol:.0e}), {left}")
+        return report
+
+    def done(self) -> None:
+        if self.say is not None:
+            self.say(f"{self.name}: {self.fits} fits in "
+                     f"{time.perf_counter() - self.started:.1f} s")

@@ -72,7 +72,7 @@ class PageModel(CalibratedLinearClassifier):
     bigrams : also hash word pairs within each field.
     short_page_words : pages with fewer words also get character n-grams (0: never).
     field_weights : weight of each field's normalized vector (keys from ``FIELDS``).
-    C, max_iter, min_count : as for the URL model's logistic regression.
+    C, tol, max_iter, min_count, n_jobs : as for the URL model's logistic regression.
     calibration_folds : temperature fitted on out-of-fold logits, grouped by ``groups``.
     seed : hash key and fold shuffle; recorded in the model file.
     """
@@ -95,9 +95,11 @@ class PageModel(CalibratedLinearClassifier):
         short_page_words: int = 40,
         field_weights: dict[str, float] | None = None,
         C: float = 20.0,
-        max_iter: int = 200,
+        tol: float = 3e-4,
+        max_iter: int = 2000,
         min_count: int = 2,
         calibration_folds: int = 3,
+        n_jobs: int | None = -1,
         seed: int = 0,
     ) -> None:
         self.n_features = n_features
@@ -105,9 +107,11 @@ class PageModel(CalibratedLinearClassifier):
         self.short_page_words = short_page_words
         self.field_weights = field_weights
         self.C = C
+        self.tol = tol
         self.max_iter = max_iter
         self.min_count = min_count
         self.calibration_folds = calibration_folds
+        self.n_jobs = n_jobs
         self.seed = seed
 
     # ------------------------------------------------------------------ features

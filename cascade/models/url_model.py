@@ -32,6 +32,7 @@ from cascade.urls import UrlKey, normalize
 __all__ = ["ClassExplanation", "Contribution", "Explanation", "UrlModel", "as_keys"]
 
 _PLACES = {"host", "domain", "suffix", "path", "query"}
+_CHUNK = 65536  # URLs featurized at once
 
 
 def as_keys(urls: Iterable[str | UrlKey]) -> list[UrlKey]:
@@ -57,7 +58,11 @@ class UrlModel(CalibratedLinearClassifier):
     n_features : hashing space (a power of two); memory is ``n_features * n_classes * 4`` bytes.
     use_tokens : also hash position-tagged words (host label, registered domain, path, query).
     C : inverse L2 regularization strength of the logistic regression.
-    max_iter : L-BFGS iterations.
+    tol : the fit stops when the largest gradient component falls below it (scikit-learn's
+        ``LogisticRegression`` criterion; its default is 1e-4). Measured on the
+        open-directory hosts, 3e-4 ends within 0.4% of the optimum's objective with the same
+        held-out accuracy and temperature within 0.5%, in a third of the iterations.
+    max_iter : a safety bound on L-BFGS iterations; reaching it warns (``ConvergenceWarning``).
     min_count : a hashed column seen in fewer training rows gets no weight.
     class_balance : weight each training row by ``(1 / class frequency) ** class_balance``
         (0: no weighting). Raises macro-F1 on skewed data at some cost in accuracy and
@@ -66,6 +71,8 @@ class UrlModel(CalibratedLinearClassifier):
         each leaving out a share of the registered domains (so it is measured on domains
         the model has not seen, as in use); the final weights are fitted on all rows.
         Below 2: no calibration (temperature 1).
+    n_jobs : threads for the solver's sparse products (scikit-learn's meaning; -1: all
+        cores). The result does not depend on it.
     seed : fixes the hash salt and the calibration split; recorded in the model file.
     """
 
@@ -81,24 +88,28 @@ class UrlModel(CalibratedLinearClassifier):
 
     def __init__(
         self,
-        ngram_range: tuple[int, int] = (1, 4),
+        ngram_range: tuple[int, int] = (3, 6),
         n_features: int = 2**20,
         use_tokens: bool = True,
-        C: float = 20.0,
-        max_iter: int = 150,
+        C: float = 50.0,
+        tol: float = 3e-4,
+        max_iter: int = 2000,
         min_count: int = 2,
-        class_balance: float = 0.0,
+        class_balance: float = 1.0,
         calibration_folds: int = 3,
+        n_jobs: int | None = -1,
         seed: int = 0,
     ) -> None:
         self.ngram_range = ngram_range
         self.n_features = n_features
         self.use_tokens = use_tokens
         self.C = C
+        self.tol = tol
         self.max_iter = max_iter
         self.min_count = min_count
         self.class_balance = class_balance
         self.calibration_folds = calibration_folds
+        self.n_jobs = n_jobs
         self.seed = seed
 
     # ------------------------------------------------------------------ features
@@ -118,6 +129,9 @@ class UrlModel(CalibratedLinearClassifier):
         """Feature matrix: each hashed occurrence adds ``1 / sqrt(occurrences in the row)``,
         so a column holds its count scaled by the row's size (a long URL does not outvote a
         short one), and a score is one gather-and-sum per URL on the request path."""
+        if len(keys) > _CHUNK:  # hash temporaries are ~40 bytes per n-gram: bound them
+            return sp.vstack([self._transform(keys[i:i + _CHUNK])
+                              for i in range(0, len(keys), _CHUNK)], format="csr")
         rows, cols = self._hashes(keys)
         n = len(keys)
         per_row = np.bincount(rows, minlength=n)
