@@ -6,15 +6,17 @@ lowest-confidence-first and the oracle, on WebKB (leave one university out) and 
 
 The first command fits the URL model, page model and fusion per split (the slow part) and
 saves, per split, both models' probabilities on the held-out rows and on the stacking
-(out-of-fold) rows of training. This script then fits the cost model on the stacking rows
-only, ranks the held-out rows, and measures accuracy at each budget for every strategy.
+(out-of-fold) rows of training, with each row's URL and domain. This script then fits the
+fetch-value model on the stacking rows only (with their URLs and page probabilities), ranks
+the held-out rows, and measures accuracy at each budget for every strategy. It also reports
+the rank correlation of each strategy's order with what a fetch did (+1 fixed, -1 broke).
 
-Spread: for each of ``--seeds`` seeds the cost model is fitted on a bootstrap resample of the
+Spread: for each of ``--seeds`` seeds the fetch-value model is fitted on a bootstrap resample of the
 stacking rows and all strategies are measured on a bootstrap resample of the held-out rows
 (the same resample for all, so differences are paired). Seed 0 also reports the plain run
 (no resampling). The held-out rows are first visits: the store knows none of their domains.
 
-Two objectives: "accuracy" (the cost model fitted with unit costs, compared on accuracy)
+Two objectives: "accuracy" (the fetch-value model fitted with unit costs, compared on accuracy)
 and, on the demo whose taxonomy weighs categories, "cost" (taxonomy costs, compared on the
 cost-weighted error). A cost-aware planner gives up some plain accuracy to avoid costly
 mistakes, so each is compared on the figure it optimizes.
@@ -27,11 +29,12 @@ import sys
 from pathlib import Path
 
 import numpy as np
+from scipy.stats import spearmanr
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import machine, write_json  # noqa: E402
 
-from cascade.fetch_value import FetchValueModel  # noqa: E402
+from cascade.fetch_value import FetchValueModel, fetch_outcomes  # noqa: E402
 from cascade.report import (  # noqa: E402
     DEFAULT_BUDGETS,
     STRATEGIES,
@@ -73,7 +76,7 @@ def _demo_counts(urls: np.ndarray) -> np.ndarray:
 
 def run_split(path: Path, seeds: int, by_lookups: bool = False,
               objective: str = "accuracy") -> dict:
-    """One split. ``objective`` "accuracy": the cost model is fitted with unit costs and
+    """One split. ``objective`` "accuracy": the fetch-value model is fitted with unit costs and
     strategies are compared on accuracy; "cost": with the taxonomy's costs, compared on the
     cost-weighted error (the planner's own objective then)."""
     d = np.load(path, allow_pickle=False)
@@ -85,6 +88,7 @@ def run_split(path: Path, seeds: int, by_lookups: bool = False,
     sign = 1.0 if objective == "accuracy" else -1.0  # higher is better after the sign
     y, pu, pf = d["y"], d["url_proba"], d["fused_proba"]
     oy, opu, opf, odom = d["oof_y"], d["oof_url_proba"], d["oof_fused_proba"], d["oof_domain"]
+    opp, ourl, url = d["oof_page_proba"], d["oof_url"], d["url"]
     counts = _demo_counts(d["url"]) if by_lookups else None
     n, on = len(y), len(oy)
     runs = []
@@ -93,8 +97,17 @@ def run_split(path: Path, seeds: int, by_lookups: bool = False,
         tr = np.arange(on) if s == 0 else rng.integers(0, on, on)
         te = np.arange(n) if s == 0 else rng.integers(0, n, n)
         cm = FetchValueModel(seed=s).fit(opu[tr], opf[tr], oy[tr], costs=fit_costs,
-                                   domains=[str(x) for x in odom[tr]])
-        gain = cm.expected_gain(pu[te])["gain"]
+                                         domains=[str(x) for x in odom[tr]],
+                                         urls=[str(u) for u in ourl[tr]], page_proba=opp[tr])
+        gain = cm.expected_gain(pu[te], urls=[str(u) for u in url[te]])["gain"]
+        if s == 0:
+            settings = {**cm.get_params(), "features": cm.feature_names()}
+            net = fetch_outcomes(y, pu, pf)
+            net = (net == 2).astype(float) - (net == 1)  # +1 fixed, -1 broke, 0 otherwise
+            # reference implementation: scipy.stats.spearmanr (rank correlation)
+            rank_corr = {"planner": round(float(spearmanr(gain, net).statistic), 4),
+                         "lowest-confidence": round(float(spearmanr(-pu.max(axis=1),
+                                                                    net).statistic), 4)}
         w = None if counts is None else counts[te].astype(float)
         runs.append(_curves(y[te], pu[te], pf[te], gain, costs, w, seed=s))
     plain, boot = runs[0], runs[1:]
@@ -123,7 +136,8 @@ def run_split(path: Path, seeds: int, by_lookups: bool = False,
     shares = {s: {f"{int(q * 100)}%": budget_for_share(FINE, score(plain[s]), q, gain_all)
                   for q in (0.9, 0.95)} for s in STRATEGIES}
     boot_share = [budget_for_share(FINE, score(r["planner"]), 0.9) for r in boot]
-    return {"objective": objective, "metric": metric,
+    return {"objective": objective, "metric": metric, "fetch_value_model": settings,
+            "rank_correlation_with_fixed_minus_broke": rank_corr,
             "rows": int(n), "stacking_rows": int(on), "classes": len(classes),
             "weighted_by_lookups": counts is not None,
             "url_only_accuracy": round(plain["planner"]["accuracy"][0], 4),

@@ -44,6 +44,7 @@ _LAZY = {
     "StorePolicy": "cascade.store",
     "run_night": "cascade.batch",
     "NightOptions": "cascade.batch",
+    "PriorShift": "cascade.prior_shift",
     "Triage": "cascade.service",
     "TriagePolicy": "cascade.service",
     "Stage": "cascade.verdict",

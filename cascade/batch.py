@@ -29,7 +29,7 @@ import numpy as np
 
 from cascade.budget import Budget, FetchCosts, plan
 from cascade.bundle import ModelBundle
-from cascade.errors import InputFormatError, InvalidURL
+from cascade.errors import CascadeError, InputFormatError, InvalidURL
 from cascade.fetch_value import DomainHistory
 from cascade.io import Progress, ReadStats, open_writer, read_records
 from cascade.store import VerdictStore
@@ -55,6 +55,9 @@ class NightOptions:
     skip_fresh: bool = True
     use_refine_queue: bool = True  # also decide what the service queued (store.refine_queue)
     progress: bool | None = None  # None: a bar on a terminal, plain lines otherwise
+    # re-estimate the class mix of the night's URLs and adjust the URL model's
+    # probabilities to it before planning (cascade.prior_shift; docs/night.md)
+    prior_shift: bool = False
 
 
 @dataclass
@@ -106,9 +109,11 @@ def read_log(path: str | Path, stats: ReadStats, fmt: str | None = None,
     return entries
 
 
-def night_run_id(log: str | Path, bundle: ModelBundle, budget: Budget) -> str:
+def night_run_id(log: str | Path, bundle: ModelBundle, budget: Budget,
+                 prior_shift: bool = False) -> str:
     """A run id that the same command gives again: the log's size and head, the model and
-    the budget. Starting the same night again resumes it."""
+    the budget (and ``prior_shift`` when on: other probabilities, another night). Starting
+    the same night again resumes it."""
     path = Path(log)
     digest = hashlib.sha256()
     digest.update(str(path.stat().st_size).encode())
@@ -116,6 +121,8 @@ def night_run_id(log: str | Path, bundle: ModelBundle, budget: Budget) -> str:
         digest.update(fh.read(1 << 20))
     digest.update(bundle.version.encode())
     digest.update(json.dumps(budget.describe(), sort_keys=True).encode())
+    if prior_shift:
+        digest.update(b"prior-shift")
     stamp = time.strftime("%Y%m%d", time.gmtime(path.stat().st_mtime))
     return f"{stamp}-{digest.hexdigest()[:12]}"
 
@@ -177,7 +184,7 @@ def _run_night(bundle: ModelBundle, store: VerdictStore, log: str | Path, out_di
     log = Path(log)
     if not log.is_file():
         raise InputFormatError(f"{log}: no such log file")
-    run_id = run_id or night_run_id(log, bundle, opts.budget)
+    run_id = run_id or night_run_id(log, bundle, opts.budget, prior_shift=opts.prior_shift)
     existing = store.run(run_id)
     resumed = existing is not None
     if existing is not None and existing["state"] == "done":
@@ -192,7 +199,8 @@ def _run_night(bundle: ModelBundle, store: VerdictStore, log: str | Path, out_di
     urls = list(entries)
     lookups = {u: e.count for u, e in entries.items()}
     store.start_run(run_id, {"log": str(log), "budget": opts.budget.describe(),
-                             "model": bundle.version, "fetch_below": opts.fetch_below})
+                             "model": bundle.version, "fetch_below": opts.fetch_below,
+                             **({"prior_shift": True} if opts.prior_shift else {})})
     # ---- what to work on: not fresh in the store (a resumed run keeps its plan)
     planned_items = store.plan_items(run_id)
     before = store.get_many(urls)
@@ -209,11 +217,14 @@ def _run_night(bundle: ModelBundle, store: VerdictStore, log: str | Path, out_di
         proba = score_on_cluster(bundle.url_model, [k.url for k in keys], dask_client)
     else:
         proba = _score(bundle, keys)
+    shift = None
+    if opts.prior_shift:
+        proba, shift = _shift_priors(bundle, proba, tell)
     domains = [k.registered_domain or k.host for k in keys]
     history = _history(store, bundle.classes) if opts.use_history else None
     costs = FetchCosts.from_history(store.fetch_history()) if opts.use_history and \
         store.counts()["fetches"] else None
-    gain = bundle.expected_gain(proba, domains, history) if len(keys) else {
+    gain = bundle.expected_gain(proba, domains, history, urls=keys) if len(keys) else {
         "gain": np.zeros(0), "p_wrong": np.zeros(0)}
     if not planned_items:
         night_plan = plan([k.url for k in keys], proba if len(keys) else np.zeros((0, 1)),
@@ -250,6 +261,8 @@ def _run_night(bundle: ModelBundle, store: VerdictStore, log: str | Path, out_di
     # ---- outputs
     report = _report(bundle, store, run_id, entries, work, before, proba, gain, row_of,
                      stats, opts, time.perf_counter() - started)
+    if shift is not None:
+        report["prior_shift"] = shift
     paths = _write_outputs(bundle, store, run_id, out, report, keys, proba, gain, row_of,
                            lookups, opts)
     store.set_run_state(run_id, "done", report)
@@ -273,6 +286,22 @@ def _add_queued(store: VerdictStore, entries: dict[str, _LogEntry]) -> list[str]
             entries[key.url] = _LogEntry(key, count, from_queue=True)
             added.append(key.url)
     return added
+
+
+def _shift_priors(bundle: ModelBundle, proba: np.ndarray, tell: Callable[[str], None]
+                  ) -> tuple[np.ndarray, dict[str, Any]]:
+    """The night's URL probabilities adjusted to its estimated class mix, and the summary
+    for the report; a model without class counts (or unusable rows) keeps them as they
+    are, with the reason in the summary: the night goes on."""
+    from cascade.prior_shift import adjust_to_batch
+
+    try:
+        adjusted, summary = adjust_to_batch(proba, bundle.url_model)
+    except CascadeError as exc:
+        tell(f"prior shift not applied: {exc}")
+        return proba, {"applied": False, "note": str(exc)}
+    tell(f"prior shift: {summary['note']}")
+    return adjusted, summary
 
 
 def _score(bundle: ModelBundle, keys: Sequence[UrlKey]) -> np.ndarray:
@@ -487,6 +516,8 @@ def _summary(r: Mapping[str, Any]) -> str:
              f"{r['spent']['seconds']:.0f} fetch-seconds) |",
              f"| budget | {', '.join(f'{k} {v}' for k, v in r['budget'].items()) or 'none'} |",
              f"| review queue | {r.get('review_queue', 0)} URLs |", ""]
+    if "prior_shift" in r:
+        lines += _prior_shift_lines(r["prior_shift"])
     lines += ["## Fetch outcomes", "", "| outcome | fetches |", "| --- | --- |"]
     lines += [f"| {o} | {n} |" for o, n in sorted(r["fetch_outcomes"].items())]
     lines += ["", "## Drift against the previous night", ""]
@@ -503,3 +534,13 @@ def _summary(r: Mapping[str, Any]) -> str:
     lines += ["", "Categories are probabilities; the policy owner decides what to block.", ""]
     return "\n".join(lines)
 
+
+def _prior_shift_lines(shift: Mapping[str, Any]) -> list[str]:
+    lines = ["## Class mix (prior shift)", "", shift.get("note", ""), ""]
+    est, train = shift.get("estimated_priors"), shift.get("training_priors")
+    if shift.get("applied") and est and train:
+        lines += ["| category | training prior | tonight's estimate |", "| --- | --- | --- |"]
+        lines += [f"| {c} | {train[c]:.3f} | {est[c]:.3f} |"
+                  for c in sorted(est, key=lambda c: -est[c])]
+        lines.append("")
+    return lines

@@ -266,7 +266,8 @@ def plan(
     doms = list(domains) if domains is not None else [""] * n
     per_fetch = fetch_costs or FetchCosts()
     if n and value_model is not None:
-        est = value_model.expected_gain(pu, doms if domains is not None else None, history)
+        est = value_model.expected_gain(pu, doms if domains is not None else None, history,
+                                        urls=[str(u) for u in urls])
     elif n:
         est = confidence_gain(pu, np.ones(pu.shape[1]) if costs is None else costs)
     else:

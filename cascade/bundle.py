@@ -196,12 +196,14 @@ class ModelBundle:
         return pages
 
     def expected_gain(self, url_proba: np.ndarray, domains: Sequence[str] | None = None,
-                      history: DomainHistory | None = None) -> dict[str, np.ndarray]:
+                      history: DomainHistory | None = None,
+                      urls: Sequence[str | UrlKey] | None = None) -> dict[str, np.ndarray]:
         """Per URL, what a fetch is expected to save (``gain``, ``p_wrong``, ``p_fix``,
         ``p_break``): from the fetch-value model, or, without one, from confidence alone
-        weighted by the taxonomy's costs."""
+        weighted by the taxonomy's costs. ``urls`` (aligned with ``url_proba``) are read by
+        a fetch-value model that uses URL shape; pass them always."""
         if self.value_model is not None:
-            return self.value_model.expected_gain(url_proba, domains, history)
+            return self.value_model.expected_gain(url_proba, domains, history, urls=urls)
         return confidence_gain(url_proba, self.taxonomy.costs(self.classes))
 
     @property
@@ -363,7 +365,7 @@ def fit_bundle(
     say(f"URL model on {n} rows ({folds} out-of-fold fits, then all rows)")
     um = clone(url_model if url_model is not None else UrlModel()).set_params(
         calibration_folds=folds, seed=seed)
-    um.fit(keys, labels, taxonomy=taxonomy, folds=fold)
+    um.fit(keys, labels, taxonomy=taxonomy, folds=fold, progress=progress)
     url_oof = um.oof_logits_.astype(np.float64)
     url_seen = ~np.isnan(url_oof[:, 0])
     report: dict[str, Any] = {"folds": folds, "rows": n, "pages": int(page_rows.size)}
@@ -378,7 +380,7 @@ def fit_bundle(
     pm = clone(page_model if page_model is not None else PageModel()).set_params(
         calibration_folds=folds, seed=seed)
     pm.fit(page_list, [labels[i] for i in page_rows], taxonomy=taxonomy,
-           folds=fold[page_rows])
+           folds=fold[page_rows], progress=progress)
     page_oof = np.full_like(url_oof, np.nan)
     page_oof[page_rows] = pm.oof_logits_
     both = url_seen & ~np.isnan(page_oof[:, 0])
@@ -408,7 +410,8 @@ def fit_bundle(
         vm = clone(value_model if value_model is not None else FetchValueModel()).set_params(
             seed=seed)
         vm.fit(pu, fused, y[both], costs=taxonomy.costs(),
-               domains=[group_list[int(i)] for i in rows])
+               domains=[group_list[int(i)] for i in rows],
+               urls=[keys[int(i)] for i in rows], page_proba=pp)
         report["fetch_value_model"] = vm.training_
     else:  # e.g. every page on one domain: no out-of-fold rows to learn fetch value from
         report["fetch_value_model"] = (

@@ -440,9 +440,17 @@ def cmd_report(args: argparse.Namespace) -> int:
     if not bundle.has_pages or not with_page:
         _eprint("report: no pages (or no page model): every fetch keeps the URL verdict")
     pu = bundle.url_proba(keys)
+    shift: dict[str, Any] | None = None
+    if args.prior_shift:  # the labels only describe the result; EM does not read them
+        from cascade.prior_shift import adjust_to_batch
+
+        pu, shift = adjust_to_batch(pu, bundle.url_model, y_true=y)
+        _eprint(f"report: prior shift: {shift['note']}")
     pf = bundle.predict_proba(keys, pages, url_proba=pu)
-    gain = bundle.expected_gain(pu, [k.registered_domain or k.host for k in keys])["gain"]
+    gain = bundle.expected_gain(pu, [k.registered_domain or k.host for k in keys],
+                                urls=keys)["gain"]
     weighted = any(c != 1 for c in counts)
+    extra_context = {} if shift is None else {"prior shift": shift["note"]}
     rep = build_report(y, pu, pf, gain, classes, costs=bundle.taxonomy.costs(classes),
                        counts=counts if weighted else None,
                        operating_budget=args.operating_budget,
@@ -450,13 +458,16 @@ def cmd_report(args: argparse.Namespace) -> int:
                        title=args.title,
                        context={"model": bundle.version, "labelled file": args.input,
                                 "rows with a page": with_page,
-                                "planner": bundle.planner_name})
+                                "planner": bundle.planner_name, **extra_context})
+    if shift is not None:
+        rep["prior_shift"] = shift
     paths = write_report(rep, args.out)
     table = [{"budget": r["budget"], **{s: r[s]["accuracy"] for s in
                                         ("planner", "lowest-confidence", "random", "oracle")}}
              for r in rep["budget_table"]]
     return _finish({"report": str(paths["html"]), "json": str(paths["json"]),
-                    "rows": len(keys), "pages": with_page, "budget_table": table},
+                    "rows": len(keys), "pages": with_page, "budget_table": table,
+                    **({} if shift is None else {"prior_shift": shift})},
                    stats, args.quiet)
 
 
@@ -473,6 +484,7 @@ def cmd_night(args: argparse.Namespace) -> int:
     policy, resolver = _fetch_setup(args)
     options = NightOptions(budget=_budget(args), fetch_below=args.fetch_below,
                            review_size=args.review_size, use_history=not args.no_history,
+                           prior_shift=args.prior_shift,
                            progress=False if args.quiet else None)
     client = None
     if args.engine == "dask" and args.dask_scheduler:
@@ -574,6 +586,13 @@ def _add_input(p: argparse.ArgumentParser, required: bool = True) -> None:
                         "seen_at), or JSON Lines; .gz accepted; '-' for stdin")
     p.add_argument("--input-format", choices=["txt", "csv", "tsv", "jsonl"],
                    help="override the format guessed from the name or first line")
+
+
+def _add_prior_shift(p: argparse.ArgumentParser, batch: str) -> None:
+    p.add_argument("--prior-shift", action="store_true",
+                   help=f"re-estimate the class mix of {batch} by EM and adjust the URL "
+                        "model's probabilities to it (assumes only the mix changed; "
+                        "docs/night.md)")
 
 
 def _add_fetch_options(p: argparse.ArgumentParser) -> None:
@@ -745,6 +764,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--precision-target", type=float, default=0.95)
     p.add_argument("--seeds", type=int, default=5, help="random-order repeats (default 5)")
     p.add_argument("--title", default="cascade budget report")
+    _add_prior_shift(p, "the labelled file's URLs (labels unused)")
     p.set_defaults(func=cmd_report)
 
     p = command("demo", "Run the whole job on the invented demo scenario into a folder.")
@@ -780,6 +800,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="fetch here, or on a Dask cluster (pip install -e '.[dask]')")
     p.add_argument("--dask-scheduler", help="address of an existing Dask scheduler "
                                             "(default: a local cluster of 2 processes)")
+    _add_prior_shift(p, "the night's URLs")
     _add_fetch_options(p)
     p.set_defaults(func=cmd_night)
 

@@ -67,7 +67,7 @@ CASES = [
     Case("FetchValueModel", lambda: FetchValueModel(),
          lambda m, d: m.fit(d.url_proba, d.fused_proba, d.y),
          lambda m, d: m.outcome_proba(d.url_proba[:20]), "value",
-         {"C": -1, "domain_dropout": 2}, other_param=("C", 0.5)),
+         {"C": -1, "class_prior": -1, "rate_folds": 1}, other_param=("C", 0.5)),
 ]
 BY_NAME = {c.name: c for c in CASES}
 
