@@ -144,3 +144,28 @@ def test_resolve_jobs_follows_scikit_learns_meaning() -> None:
     assert resolve_jobs(None) == 1
     assert resolve_jobs(1) == 1
     assert 1 <= resolve_jobs(-1) <= 4
+
+
+def test_fitting_on_chosen_rows_in_place_equals_fitting_on_their_copy(problem) -> None:
+    # a calibration fold's training side is read in place (two runs of rows, no copy);
+    # it must be the same problem as the copied rows, including the dropped columns
+    X, y, weight = problem
+    rows = np.concatenate((np.arange(0, 80), np.arange(150, N_ROWS)))
+    copied = fit_softmax(X[rows], y[rows], N_CLASSES, C=2.0, sample_weight=weight[rows])
+    in_place = fit_softmax(X, y, N_CLASSES, C=2.0, sample_weight=weight, rows=rows)
+    # same problem; float32 sums split at other places differ in rounding only
+    np.testing.assert_allclose(in_place[0], copied[0], atol=1e-5)
+    np.testing.assert_allclose(in_place[1], copied[1], atol=1e-5)
+    assert copied[2]["used_columns"] == in_place[2]["used_columns"]
+    with pytest.raises(ValueError, match="sorted"):
+        fit_softmax(X, y, N_CLASSES, rows=rows[::-1])
+
+
+def test_columns_below_min_count_get_no_weight(problem) -> None:
+    X, y, _ = problem
+    counts = np.bincount(X.indices, minlength=N_COLUMNS)
+    cut = int(np.sort(counts)[5]) + 1  # the rarest few columns fall below it
+    rare = np.flatnonzero(counts < cut)
+    assert 0 < rare.size < N_COLUMNS
+    W, _, info = fit_softmax(X, y, N_CLASSES, C=2.0, min_count=cut)
+    assert not W[rare].any() and info["used_columns"] == N_COLUMNS - rare.size

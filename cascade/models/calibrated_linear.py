@@ -47,6 +47,7 @@ ABSENT_CLASS_BIAS = -30.0
 class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator):
     """Base class; see the module docstring. Parameters common to every subclass:
     ``n_features``, ``C``, ``tol``, ``max_iter``, ``min_count``, ``calibration_folds``,
+    ``calibration_rows``,
     ``n_jobs``, ``seed``."""
 
     _param_rules: ClassVar[dict[str, Constraint]] = {
@@ -59,6 +60,9 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
                         text="None or a non-zero whole number (-1: all cores)"),
         "min_count": Interval(1, None, integer=True),
         "calibration_folds": Interval(0, None, integer=True),
+        "calibration_rows": OneOf(test=lambda v: v is None or (
+            isinstance(v, int) and not isinstance(v, bool) and v >= 1),
+            text="None or a whole number of at least 1"),
         "seed": Interval(0, 2**63 - 1, integer=True),
     }
     _item_name: ClassVar[str] = "items"  # "URLs", "pages": for error messages
@@ -82,6 +86,11 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
 
     def _term_kind(self, names: list[str]) -> str:
         raise NotImplementedError
+
+    def _spans(self, item: Any, class_index: int) -> tuple:
+        """Readable spans of the item's text and their share of one class logit (the URL
+        model's; none by default)."""
+        return ()
 
     def _default_groups(self, items: Sequence[Any]) -> list[str] | None:
         """Calibration groups when ``fit`` is given none (None: every row its own)."""
@@ -114,12 +123,10 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
                     init: tuple[np.ndarray, np.ndarray] | None = None,
                     progress: Callable[[FitProgress], None] | None = None
                     ) -> tuple[np.ndarray, np.ndarray, dict]:
-        W, b, info = fit_softmax(X if rows.shape[0] == X.shape[0] else X[rows], y[rows],
-                                 n_classes, C=self.C,
-                                 sample_weight=None if weight is None else weight[rows],
+        W, b, info = fit_softmax(X, y, n_classes, C=self.C, sample_weight=weight,
                                  max_iter=self.max_iter, tol=self.tol,
                                  min_count=self.min_count, init=init, n_jobs=self.n_jobs,
-                                 progress=progress)
+                                 progress=progress, rows=rows)
         b[np.bincount(y[rows], minlength=n_classes) == 0] = ABSENT_CLASS_BIAS
         return W, b, info
 
@@ -172,24 +179,41 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
             fold = np.asarray(folds, dtype=np.int64)
             if fold.shape != (n,):
                 raise ValueError(f"folds must hold one fold number per row ({n})")
-        prepared = self._prepare(items)
+        # Work in fold order (each fold's rows contiguous, order kept inside a fold): a
+        # fold's training side is then two runs of rows, which the solver reads in place
+        # instead of copying them (at a million URLs, a copy is gigabytes).
+        order = np.argsort(fold, kind="stable")
+        fold, codes = fold[order], codes[order]
+        weight = None if weight is None else weight[order]
+        prepared = self._prepare([items[i] for i in order])
         oof = np.full((n, k), np.nan, dtype=np.float32)
         all_rows = np.arange(n)
         used_folds = 0
         fold_ids = [f for f in range(int(fold.max()) + 1 if fold.size else 0)
                     if (fold == f).any() and len(np.unique(codes[fold != f])) >= 2]
+        if folds is None and self.calibration_rows is not None:
+            # enough held-out rows for one temperature: skip the remaining folds
+            kept, held_out = [], 0
+            for f in fold_ids:
+                if held_out >= self.calibration_rows:
+                    break
+                kept.append(f)
+                held_out += int((fold == f).sum())
+            fold_ids = kept
         meter = _FitMeter(progress, type(self).__name__, len(fold_ids) + 1)
         start: tuple[np.ndarray, np.ndarray] | None = None
         fold_solutions = []
         fold_info = []
         for f in fold_ids:
-            held = fold == f
-            train = all_rows[~held]
+            lo, hi = np.searchsorted(fold, [f, f + 1])  # the fold's run of rows
+            train = np.concatenate((all_rows[:lo], all_rows[hi:]))
             Xf, _ = self._design(prepared, train)
             W, b, finfo = self._fit_linear(Xf, codes, weight, train, k, init=start,
                                            progress=meter.step(f"calibration fold "
                                                                f"{used_folds + 1}"))
-            oof[held] = np.asarray(Xf[held] @ W) + b
+            for a in range(lo, hi, 65_536):  # bounded temporaries
+                z = min(hi, a + 65_536)
+                oof[a:z] = np.asarray(Xf[a:z] @ W) + b
             used_folds += 1
             start = (W, b)
             fold_solutions.append((W, b))
@@ -197,6 +221,9 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
                                                           "seconds")})
         seen = ~np.isnan(oof[:, 0])
         temperature = fit_temperature(oof[seen], codes[seen]) if seen.any() else 1.0
+        unsorted = np.empty_like(oof)
+        unsorted[order] = oof
+        oof = unsorted
         X_all, state = self._design(prepared, None)
         if fold_solutions:
             start = (np.mean([w for w, _ in fold_solutions], axis=0),
@@ -296,7 +323,8 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
                 for i in shown)
             rest.append(float(per_feature[order[top:], c].sum()))
             out.append(ClassExplanation(self.classes_[c], float(proba[c]), float(logits[c]),
-                                        float(bias[c]), contributions))
+                                        float(bias[c]), contributions,
+                                        self._spans(item, c)))
         return Explanation(url, tuple(out), tuple(rest))
 
     # ------------------------------------------------------------ files

@@ -10,7 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
-__all__ = ["ClassExplanation", "Contribution", "Explanation"]
+__all__ = ["ClassExplanation", "Contribution", "Explanation", "Span"]
 
 
 @dataclass(frozen=True)
@@ -23,12 +23,25 @@ class Contribution:
 
 
 @dataclass(frozen=True)
+class Span:
+    """A stretch of the URL's text and its exact share of a class logit: every character
+    n-gram's contribution is spread evenly over its characters, and neighbouring characters
+    pushing the same way are joined, so overlapping fragments ("rox", "ox", "roxy") read as
+    one quoted span. ``place`` is ``host`` or ``path`` (path and query)."""
+
+    text: str
+    place: str
+    value: float
+
+
+@dataclass(frozen=True)
 class ClassExplanation:
     category: str
     probability: float
     logit: float
     bias: float
     contributions: tuple[Contribution, ...]
+    spans: tuple[Span, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -55,6 +68,9 @@ class Explanation:
                         {"feature": f.feature, "kind": f.kind, "value": round(f.value, 6)}
                         for f in c.contributions
                     ],
+                    **({"spans": [{"text": sp.text, "place": sp.place,
+                                   "value": round(sp.value, 6)} for sp in c.spans]}
+                       if c.spans else {}),
                 }
                 for c, r in zip(self.classes, self.rest, strict=True)
             ],

@@ -74,6 +74,7 @@ class PageModel(CalibratedLinearClassifier):
     field_weights : weight of each field's normalized vector (keys from ``FIELDS``).
     C, tol, max_iter, min_count, n_jobs : as for the URL model's logistic regression.
     calibration_folds : temperature fitted on out-of-fold logits, grouped by ``groups``.
+    calibration_rows : as for the URL model: folds stop once this many rows are held out.
     seed : hash key and fold shuffle; recorded in the model file.
     """
 
@@ -99,6 +100,7 @@ class PageModel(CalibratedLinearClassifier):
         max_iter: int = 2000,
         min_count: int = 2,
         calibration_folds: int = 3,
+        calibration_rows: int | None = None,
         n_jobs: int | None = -1,
         seed: int = 0,
     ) -> None:
@@ -111,6 +113,7 @@ class PageModel(CalibratedLinearClassifier):
         self.max_iter = max_iter
         self.min_count = min_count
         self.calibration_folds = calibration_folds
+        self.calibration_rows = calibration_rows
         self.n_jobs = n_jobs
         self.seed = seed
 

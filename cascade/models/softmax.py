@@ -44,6 +44,7 @@ __all__ = ["FitProgress", "fit_softmax", "resolve_jobs"]
 
 _BLOCKS = 4  # fixed row blocks: results independent of the thread count
 _PAIR_BYTES = 512 << 20  # memory for the curvature pairs
+_CHUNK_ROWS = 65_536  # rows per temporary in column_squares
 _ARMIJO = 1e-4  # sufficient-decrease constant (Nocedal and Wright, section 3.1)
 
 
@@ -75,20 +76,57 @@ def resolve_jobs(n_jobs: int | None) -> int:
     return min(jobs, _BLOCKS)
 
 
-class _Products:
-    """``X @ W`` and ``X.T @ G`` on fixed row blocks, in float32, optionally threaded."""
+def _runs(rows: np.ndarray) -> list[tuple[int, int]]:
+    """Sorted row indices as maximal runs ``[a, b)`` of consecutive rows."""
+    if rows.size == 0:
+        return []
+    breaks = np.flatnonzero(np.diff(rows) != 1)
+    starts = np.concatenate(([rows[0]], rows[breaks + 1]))
+    stops = np.concatenate((rows[breaks] + 1, [rows[-1] + 1]))
+    return [(int(a), int(b)) for a, b in zip(starts, stops, strict=True)]
 
-    def __init__(self, X: sp.csr_matrix, n_jobs: int) -> None:
-        n = X.shape[0]
-        cuts = np.linspace(0, n, min(_BLOCKS, max(1, n)) + 1).astype(np.int64)
-        self.bounds = [(int(a), int(b)) for a, b in zip(cuts[:-1], cuts[1:], strict=True)
-                       if b > a]
-        # row blocks that share X's arrays (a slice ``X[a:b]`` would copy them)
-        self.blocks = [sp.csr_matrix((X.data[X.indptr[a]:X.indptr[b]],
-                                      X.indices[X.indptr[a]:X.indptr[b]],
+
+class _Products:
+    """``X @ W`` and ``X.T @ G`` over the training rows, on fixed row blocks, in float32,
+    optionally threaded.
+
+    The training rows are given as runs of consecutive rows of ``X`` (a calibration fold's
+    training side is all rows but one contiguous fold, see ``CalibratedLinearClassifier``),
+    so each block is a view of ``X``'s data: no copy of the rows is made. Column indices are
+    renumbered to the used columns (``remap``; a dropped column goes to the extra last
+    column, whose weight stays zero), which is the one copy: 4 bytes per stored entry.
+    Blocks are fixed by the training rows alone and summed in a fixed order, so the result
+    does not depend on the number of threads."""
+
+    def __init__(self, X: sp.csr_matrix, runs: list[tuple[int, int]], remap: np.ndarray,
+                 width: int, n_jobs: int) -> None:
+        m = sum(b - a for a, b in runs)
+        cuts = np.linspace(0, m, min(_BLOCKS, max(1, m)) + 1).astype(np.int64)
+        data = X.data if X.data.dtype == np.float32 else None
+        self.blocks: list[list[tuple[int, int, sp.csr_matrix]]] = []
+        self.m, self.width = m, width
+        pos = 0  # training position of the current run's first row
+        pieces: list[tuple[int, int, int, int]] = []  # (position, rows a, b) split at cuts
+        for a, b in runs:
+            while a < b:
+                block = int(np.searchsorted(cuts, pos, side="right")) - 1
+                take = min(b - a, int(cuts[block + 1]) - pos)
+                pieces.append((block, pos, a, a + take))
+                pos, a = pos + take, a + take
+        for block in range(len(cuts) - 1):
+            mine = []
+            for blk, at, a, b in pieces:
+                if blk != block or b <= a:
+                    continue
+                lo, hi = int(X.indptr[a]), int(X.indptr[b])
+                values = data[lo:hi] if data is not None else \
+                    X.data[lo:hi].astype(np.float32)
+                view = sp.csr_matrix((values, remap[X.indices[lo:hi]],
                                       X.indptr[a:b + 1] - X.indptr[a]),
-                                     shape=(b - a, X.shape[1]), copy=False)
-                       for a, b in self.bounds]
+                                     shape=(b - a, width), copy=False)
+                mine.append((at, at + (b - a), view))
+            if mine:
+                self.blocks.append(mine)
         self.pool = ThreadPoolExecutor(n_jobs) if n_jobs > 1 and len(self.blocks) > 1 \
             else None
 
@@ -99,17 +137,35 @@ class _Products:
 
     def forward(self, W32: np.ndarray, out: np.ndarray) -> np.ndarray:
         def one(i: int) -> None:
-            a, b = self.bounds[i]
-            out[a:b] = self.blocks[i] @ W32
+            for a, b, view in self.blocks[i]:
+                out[a:b] = view @ W32
         self._map(one, range(len(self.blocks)))
         return out
 
     def backward(self, G32: np.ndarray) -> np.ndarray:
-        parts = self._map(lambda i: self.blocks[i].T @ G32[self.bounds[i][0]:self.bounds[i][1]],
-                          range(len(self.blocks)))
+        def one(i: int) -> np.ndarray:
+            total = None
+            for a, b, view in self.blocks[i]:
+                part = view.T @ G32[a:b]
+                total = part if total is None else total + part
+            return total
+        parts = self._map(one, range(len(self.blocks)))
         total = parts[0].astype(np.float64)
         for p in parts[1:]:
             total += p
+        return total
+
+    def column_squares(self, weight: np.ndarray) -> np.ndarray:
+        """``sum_i weight_i * x_ij ** 2`` per column, in row chunks (bounded temporaries)."""
+        total = np.zeros(self.width)
+        for block in self.blocks:
+            for a, _, view in block:
+                for r in range(0, view.shape[0], _CHUNK_ROWS):
+                    part = view[r:r + _CHUNK_ROWS]
+                    per_entry = np.repeat(weight[a + r:a + r + part.shape[0]],
+                                          np.diff(part.indptr))
+                    total += np.bincount(part.indices, weights=per_entry * part.data
+                                         * part.data, minlength=self.width)
         return total
 
     def close(self) -> None:
@@ -131,53 +187,74 @@ def fit_softmax(
     memory: int = 8,
     ftol: float = 1e-10,
     progress: Callable[[FitProgress], None] | None = None,
+    rows: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray, dict]:
     """Return ``(W, b, info)``: weights (n_features, n_classes) float32, intercepts, and
     the optimizer's report (iterations, converged, why it stopped, final objective and
     gradient). ``init`` warm-starts from full-width weights and intercepts (e.g. a refit
-    of the same problem on more rows); ``progress`` is called after every iteration."""
+    of the same problem on more rows); ``progress`` is called after every iteration.
+    ``rows`` (sorted indices; None: all) fits on those rows of ``X``, ``y`` and
+    ``sample_weight`` without copying them (cheapest when they form few runs)."""
     started = time.perf_counter()
-    X = sp.csr_matrix(X)
+    if not sp.isspmatrix_csr(X):
+        X = sp.csr_matrix(X)
     y = np.asarray(y, dtype=np.int64)
-    n, n_features = X.shape
+    n_all, n_features = X.shape
+    if y.shape != (n_all,):
+        raise ValueError(f"y must hold one class per row of X ({n_all})")
     if C <= 0:
         raise ValueError(f"C must be positive, got {C}")
     if tol <= 0 or max_iter < 1 or memory < 1:
         raise ValueError("tol must be positive, max_iter and memory at least 1")
-    weight = np.ones(n) if sample_weight is None else np.asarray(sample_weight, dtype=np.float64)
-    if weight.shape != (n,) or (weight < 0).any() or weight.sum() <= 0:
+    rows = np.arange(n_all) if rows is None else np.asarray(rows, dtype=np.int64)
+    if rows.size and ((np.diff(rows) <= 0).any() or rows[0] < 0 or rows[-1] >= n_all):
+        raise ValueError("rows must be sorted, distinct row indices of X")
+    runs = _runs(rows)
+    y = y[rows]
+    n = len(rows)
+    weight = np.ones(n) if sample_weight is None else \
+        np.asarray(sample_weight, dtype=np.float64)[rows]
+    if sample_weight is not None and np.shape(sample_weight) != (n_all,):
+        raise ValueError("sample_weight must hold one number per row of X")
+    if (weight < 0).any() or weight.sum() <= 0:
         raise ValueError("sample_weight must be non-negative, one per row, not all zero")
     total = weight.sum()
     weight = weight / total
     alpha = 1.0 / (C * total)
     # A column seen in fewer than ``min_count`` rows is dropped (weight 0): it cannot
     # generalize, and dropping it shrinks the problem several times over.
-    doc_freq = np.bincount(X.indices, minlength=n_features)
+    doc_freq = np.zeros(n_features, dtype=np.int64)
+    for a, b in runs:
+        doc_freq += np.bincount(X.indices[X.indptr[a]:X.indptr[b]], minlength=n_features)
     used = np.flatnonzero(doc_freq >= max(1, min_count))
-    Xc = X[:, used].astype(np.float32).tocsr()
-    del X  # the caller's copy of the rows, if it passed a temporary, can go now
+    del doc_freq
     d, k = len(used), n_classes
-    products = _Products(Xc, resolve_jobs(n_jobs))
-    rows = np.arange(n)
+    remap = np.full(n_features, d, dtype=X.indices.dtype)  # dropped: the extra column d
+    remap[used] = np.arange(d, dtype=X.indices.dtype)
+    products = _Products(X, runs, remap, d + 1, resolve_jobs(n_jobs))
+    del remap
+    every = np.arange(n)
     Z = np.empty((n, k), dtype=np.float32)
+    W32 = np.zeros((d + 1, k), dtype=np.float32)  # row d: the dropped columns, always 0
 
     def objective(theta: np.ndarray) -> tuple[float, np.ndarray]:
         W = theta[: d * k].reshape(d, k)
         b = theta[d * k:]
-        products.forward(W.astype(np.float32), Z)
+        W32[:d] = W
+        products.forward(W32, Z)
         Zb = Z.astype(np.float64)
         Zb += b
         zmax = Zb.max(axis=1, keepdims=True)
         Zb -= zmax
-        true = Zb[rows, y].copy()
+        true = Zb[every, y].copy()
         np.exp(Zb, out=Zb)
         S = Zb.sum(axis=1)
         loss = float(weight @ (np.log(S) - true))
         Zb /= S[:, None]
-        Zb[rows, y] -= 1.0
+        Zb[every, y] -= 1.0
         Zb *= weight[:, None]
         gb = Zb.sum(axis=0)
-        gW = products.backward(Zb.astype(np.float32))
+        gW = products.backward(Zb.astype(np.float32))[:d]
         gW += alpha * W
         value = loss + 0.5 * alpha * float(np.dot(theta[: d * k], theta[: d * k]))
         return value, np.concatenate((gW.ravel(), gb))
@@ -185,7 +262,7 @@ def fit_softmax(
     # diagonal of the Hessian at the uniform start, per column (same for every class):
     # sum_i w_i x_ij^2 (1/k)(1 - 1/k) + alpha; the intercepts get the data term alone
     spread = (1.0 / k) * (1.0 - 1.0 / k)
-    col_sq = np.asarray(Xc.multiply(Xc).T @ weight.astype(np.float32)).ravel()
+    col_sq = products.column_squares(weight)[:d]
     precondition = np.concatenate((np.repeat(col_sq * spread + alpha, k),
                                    np.full(k, spread)))
     # curvature pairs in float64 unless they would pass 512 MiB; then float32, and fewer
