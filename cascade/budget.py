@@ -61,18 +61,20 @@ class Budget:
     @classmethod
     def parse(cls, count: str | None = None, bytes_: str | None = None,
               seconds: str | None = None) -> Budget:
-        """From command-line text: ``"500"`` or ``"10%"``; ``"50MB"``/``"2GiB"``; ``"3600"``."""
+        """From command-line text: a number of fetches (``"500"``) or a share of the URLs
+        (``"10%"`` or ``"0.1"``, see ``parse_share``); ``"50MB"``/``"2GiB"``; ``"3600"``.
+        Every command reads a budget with this one parser."""
         fetches = fraction = None
         if count is not None:
             text = count.strip()
-            try:
-                if text.endswith("%"):
-                    fraction = float(text[:-1]) / 100.0
-                else:
-                    fetches = int(text)
-            except ValueError:
-                raise ValueError(f"budget {count!r}: give a number of fetches (500) or a "
-                                 "share of the URLs (10%)") from None
+            if re.fullmatch(r"\+?\d+", text):
+                fetches = int(text)
+            else:
+                try:
+                    fraction = parse_share(text, what="budget")
+                except ValueError:
+                    raise ValueError(f"budget {count!r}: give a number of fetches (500) or a "
+                                     "share of the URLs (10% or 0.1)") from None
         max_bytes = None
         if bytes_ is not None:
             m = _SIZE.match(bytes_)
@@ -102,6 +104,23 @@ class Budget:
                                   ("max_fraction", self.max_fraction),
                                   ("max_bytes", self.max_bytes),
                                   ("max_seconds", self.max_seconds)) if v is not None}
+
+
+def parse_share(text: str, what: str = "share") -> float:
+    """A share of the URLs from command-line text: ``"30%"`` or ``"0.3"`` (a number from 0 to
+    1). The one reading of a share for every command (``--budget``, ``--operating-budget``)."""
+    raw = str(text).strip()
+    try:
+        value = float(raw[:-1]) / 100.0 if raw.endswith("%") else float(raw)
+    except ValueError:
+        raise ValueError(f"{what} {text!r}: give a share of the URLs, such as 30% or "
+                         "0.3") from None
+    if re.fullmatch(r"\+?0*[1-9]\d*", raw):
+        raise ValueError(f"{what} {text!r}: a whole number reads as a count of fetches; "
+                         "here a share of the URLs is needed, such as 30% or 0.3")
+    if not (math.isfinite(value) and 0.0 <= value <= 1.0):
+        raise ValueError(f"{what} {text!r}: a share is between 0 and 1 (or 0% and 100%)")
+    return value
 
 
 # ------------------------------------------------------------------------ fetch costs

@@ -7,13 +7,17 @@ Exit codes (``EXIT_CODES`` is the one table; also in ``cascade --help``):
   2    usage error (bad options or arguments)
   3    done, but some input lines were bad and skipped (counted, samples in the summary)
   4    a file could not be used (model directory, taxonomy, input file, too little data)
-  130  interrupted (Ctrl-C)
+  5    done, but every fetch failed (fetch, refine, night: see the outcomes in the summary)
+  130  interrupted (Ctrl-C); 143 stopped by SIGTERM. Rows already written are kept in
+       ``<output>.partial`` (never under the output's own name) and the summary says so
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
+import signal
 import sys
 import traceback
 from collections.abc import Iterator, Sequence
@@ -36,6 +40,14 @@ from cascade.io import InputRecord, Progress, ReadStats, open_writer, read_recor
 __all__ = ["EXIT_CODES", "build_parser", "exit_code_for", "main"]
 
 EXIT_OK, EXIT_BUG, EXIT_USAGE, EXIT_PARTIAL, EXIT_FILE, EXIT_INTERRUPTED = 0, 1, 2, 3, 4, 130
+EXIT_NO_FETCH, EXIT_TERMINATED = 5, 143
+#: ``--precision-target`` of ``evaluate`` and ``report`` (one default for both).
+PRECISION_TARGET = 0.95
+
+
+class Terminated(KeyboardInterrupt):  # noqa: N818 - a signal, handled like Ctrl-C
+    """SIGTERM, raised in the main thread so that every ``with`` block unwinds as on
+    Ctrl-C: writers keep their rows in ``.partial`` files, fetchers close."""
 
 #: Exception type to exit code, most specific first; anything else is a bug (exit 1).
 EXIT_CODES: tuple[tuple[type[BaseException], int], ...] = (
@@ -53,9 +65,16 @@ EXIT_CODES: tuple[tuple[type[BaseException], int], ...] = (
 )
 CHUNK = 4096
 
+#: ``UrlModel``'s defaults as ``cascade train`` shows them (kept here so that ``--help`` does
+#: not import the numeric stack; ``tests/test_cli.py`` checks them against the signature).
+URL_MODEL_DEFAULTS: dict[str, Any] = {"ngram_min": 3, "ngram_max": 6, "hash_bits": 20,
+                                      "C": 50.0, "tol": 3e-4, "max_iter": 2000,
+                                      "class_balance": 1.0}
+
 EPILOG = """exit codes: 0 done; 1 internal error (a bug); 2 usage error; 3 done but some input
 lines were skipped (see the summary on stderr); 4 a model, taxonomy or input file could not
-be used; 130 interrupted.
+be used; 5 done but every fetch failed; 130 interrupted (Ctrl-C); 143 stopped (SIGTERM).
+On 130/143 the rows already written are kept in <output>.partial.
 
 Categories are probabilities, not facts. Lookup logs are personal data: handle them under
 your organisation's policy and local law. The policy owner decides what to block."""
@@ -92,6 +111,17 @@ def _chunks(items: Iterator[Any], size: int = CHUNK) -> Iterator[list[Any]]:
         yield chunk
 
 
+def _columns(args: argparse.Namespace) -> dict[str, str] | None:
+    names = {field: getattr(args, f"{field}_column", None) for field in ("url", "label")}
+    names = {k: v for k, v in names.items() if v}
+    return names or None
+
+
+def _read(args: argparse.Namespace, path: str, stats: ReadStats) -> Any:
+    return read_records(path, fmt=args.input_format, stats=stats, columns=_columns(args),
+                        delimiter=getattr(args, "delimiter", None))
+
+
 def _input_records(args: argparse.Namespace, stats: ReadStats) -> Iterator[InputRecord]:
     if getattr(args, "urls", None):
         for i, u in enumerate(args.urls, 1):
@@ -99,7 +129,18 @@ def _input_records(args: argparse.Namespace, stats: ReadStats) -> Iterator[Input
             stats.records += 1
             yield InputRecord(line_no=i, url=u)
         return
-    yield from read_records(args.input or "-", fmt=args.input_format, stats=stats)
+    source = args.input or "-"
+    if source == "-" and _stdin_is_terminal() and not args.quiet:
+        _eprint(f"{args.command}: reading URLs from standard input, one per line; end with "
+                "Ctrl-D (or give URLs, or --input FILE)")
+    yield from _read(args, source, stats)
+
+
+def _stdin_is_terminal() -> bool:
+    try:
+        return sys.stdin.isatty()
+    except (AttributeError, ValueError):
+        return False
 
 
 def _keyed(args: argparse.Namespace, stats: ReadStats) -> Iterator[tuple[InputRecord, Any]]:
@@ -125,8 +166,7 @@ def _load_labelled(args: argparse.Namespace, stats: ReadStats) -> tuple[
 
     keys, labels, counts, times, extras = [], [], [], [], []
     progress = Progress(label="reading", enabled=None if not args.quiet else False)
-    for rec, key in keyed_records(read_records(args.input, fmt=args.input_format,
-                                               stats=stats), stats):
+    for rec, key in keyed_records(_read(args, args.input, stats), stats):
         if not rec.label:
             stats.records -= 1
             stats.add_bad(rec.line_no, rec.url, "no label")
@@ -165,29 +205,46 @@ def _write_json(obj: Any, target: str | None) -> None:
 # ---------------------------------------------------------------------------- commands
 def cmd_train(args: argparse.Namespace) -> int:
     from cascade.models.url_model import UrlModel
-    from cascade.training import train
+    from cascade.training import check_labels, train
 
     stats = ReadStats()
     keys, labels, counts, times, extras = _load_labelled(args, stats)
     if len(keys) < 2:
-        raise DataError(f"{args.input}: fewer than two usable labelled rows")
+        raise DataError(f"{args.input}: fewer than two usable labelled rows (is the label "
+                        "column named 'label'? --label-column names it)")
+    checked = check_labels(labels, _load_taxonomy(args.taxonomy), fold_case=args.fold_case,
+                           absent=args.absent_categories)
+    for line in checked.warnings:
+        _eprint(f"train: warning: {line}")
+    labels = checked.labels
     pages = _pages(args, extras, "train")
-    url_model = UrlModel(ngram_range=(args.ngram_min, args.ngram_max),
-                         n_features=2**args.hash_bits, use_tokens=not args.no_tokens,
-                         C=args.C, max_iter=args.max_iter)
+    d = URL_MODEL_DEFAULTS
+    given = {"C": args.C, "tol": args.tol, "max_iter": args.max_iter,
+             "class_balance": args.class_balance}
+    url_model = UrlModel(
+        ngram_range=(d["ngram_min"] if args.ngram_min is None else args.ngram_min,
+                     d["ngram_max"] if args.ngram_max is None else args.ngram_max),
+        n_features=2**(d["hash_bits"] if args.hash_bits is None else args.hash_bits),
+        use_tokens=not args.no_tokens, seed=args.seed,
+        **{k: v for k, v in given.items() if v is not None})
     try:
         url_model._check_params()
     except ValueError as exc:
         raise UsageError(str(exc)) from None
     bundle, metrics = train(
         keys, labels, pages=pages, times=times, counts=counts,
-        taxonomy=_load_taxonomy(args.taxonomy), url_model=url_model, folds=args.folds,
+        taxonomy=checked.taxonomy, url_model=url_model, folds=args.folds,
         holdout=args.holdout, group_by_domain=not args.no_group, seed=args.seed,
         progress=None if args.quiet else lambda m: _eprint(f"train: {m}"))
     bundle.save(args.model, metrics=metrics)
     summary: dict[str, Any] = {"model": str(args.model), "version": bundle.version,
                                "classes": len(bundle.classes),
                                "metrics_held_out": bool(metrics)}
+    if checked.folded:
+        summary["labels_folded"] = checked.folded
+    if checked.absent:
+        summary["categories_without_rows"] = {
+            "names": list(checked.absent), "kept": args.absent_categories == "keep"}
     if bundle.page_model is not None:
         summary.update(pages=sum(p is not None for p in pages), stacking=bundle.report)
     else:
@@ -203,12 +260,16 @@ def cmd_score(args: argparse.Namespace) -> int:
     stats = ReadStats()
     progress = Progress(label="scoring", enabled=None if not args.quiet else False)
     written = 0
+    if args.output == "-" and args.output_format is None and _stdout_is_terminal():
+        return _score_table(args, bundle, stats)
     with open_writer(args.output, fmt=args.output_format) as out:
+        csv_out = out.format != "jsonl"
         for chunk in _chunks(_keyed(args, stats)):
             keys = [k for _, k in chunk]
-            for verdict in bundle.verdicts(keys, fetch_below=args.fetch_below, top_k=args.top):
-                row = verdict.to_dict()
-                if args.output_format == "csv":
+            verdicts = bundle.verdicts(keys, fetch_below=args.fetch_below, top_k=args.top)
+            for (rec, _), verdict in zip(chunk, verdicts, strict=True):
+                row = _joined(rec, verdict.to_dict())
+                if csv_out:
                     row["top"] = json.dumps(row["top"])
                 out.write(row)
                 written += 1
@@ -217,14 +278,64 @@ def cmd_score(args: argparse.Namespace) -> int:
     return _finish({"scored": written, "model_version": bundle.version}, stats, args.quiet)
 
 
-def _print_explanation(exp: Any, title: str | None = None) -> None:
+def _stdout_is_terminal() -> bool:
+    try:
+        return sys.stdout.isatty()
+    except (AttributeError, ValueError):
+        return False
+
+
+def _score_table(args: argparse.Namespace, bundle: Any, stats: ReadStats) -> int:
+    """``score`` on a terminal: a readable table instead of JSON (``--output-format jsonl``
+    or a pipe gives the JSON Lines)."""
+    rows = []
+    for chunk in _chunks(_keyed(args, stats)):
+        verdicts = bundle.verdicts([k for _, k in chunk], fetch_below=args.fetch_below,
+                                   top_k=args.top)
+        for (rec, _), v in zip(chunk, verdicts, strict=True):
+            others = ", ".join(f"{c} {p:.2f}" for c, p in v.top[1:])
+            rows.append((str(rec.line_no), rec.url, v.category, f"{v.confidence:.3f}",
+                         "yes" if v.needs_fetch else "no", others))
+    head = ("line", "URL as given", "category", "confidence", "fetch?", "next guesses")
+    widths = [min(60, max(len(r[i]) for r in [head, *rows])) for i in range(len(head))]
+    for r in [head, *rows]:
+        print("  ".join(cell[:w].ljust(w) for cell, w in zip(r, widths, strict=True)).rstrip())
+    return _finish({"scored": len(rows), "model_version": bundle.version}, stats, args.quiet)
+
+
+def _joined(rec: InputRecord, row: dict[str, Any]) -> dict[str, Any]:
+    """An output row that joins back to its input: the line number and the URL exactly as
+    given (``url`` is the normalized form: two spellings of one address share it), then
+    the input's other columns (prefixed ``input_`` where a name is taken)."""
+    out: dict[str, Any] = {"line": rec.line_no, "input": rec.url, **row}
+    for name, value in rec.extra.items():
+        out[f"input_{name}" if name in out else name] = value
+    return out
+
+
+def _print_explanation(exp: Any, title: str | None = None, top: int = 8) -> None:
+    """Per class: the bias apart, then the URL's text as quoted spans (overlapping n-grams
+    merged, host or path said), then word tokens; what is not shown is summed last."""
     if title:
         print(title)
     for cls, rest in zip(exp.classes, exp.rest, strict=True):
-        print(f"  {cls.category:<14} p={cls.probability:.3f}  logit={cls.logit:+.3f}"
-              f"  (bias {cls.bias:+.3f}, other features {rest:+.3f})")
-        for c in cls.contributions:
-            print(f"      {c.value:+.3f}  {c.kind:<6} {c.feature}")
+        print(f"  {cls.category:<14} p={cls.probability:.3f}  logit={cls.logit:+.3f}")
+        print(f"      {cls.bias:+.3f}  bias   (the category's base rate in training)")
+        shown = 0.0
+        if cls.spans:
+            for sp in cls.spans[:top]:
+                print(f"      {sp.value:+.3f}  {sp.place:<6} {json.dumps(sp.text)}")
+                shown += sp.value
+            tokens = [c for c in cls.contributions if c.kind == "token"][:top]
+            for c in tokens:
+                print(f"      {c.value:+.3f}  token  {c.feature}")
+                shown += c.value
+            other = cls.logit - cls.bias - shown
+        else:
+            for c in cls.contributions:
+                print(f"      {c.value:+.3f}  {c.kind:<6} {c.feature}")
+            other = rest
+        print(f"      {other:+.3f}  everything not listed above")
 
 
 def cmd_explain(args: argparse.Namespace) -> int:
@@ -255,29 +366,52 @@ def cmd_explain(args: argparse.Namespace) -> int:
         v = exp.verdict
         if page is None:
             print(exp.url_model.url)
-            _print_explanation(exp.url_model)
+            _print_explanation(exp.url_model, top=args.top)
             continue
         print(f"{v.url}: {v.category} p={v.confidence:.3f} (stage {v.stage}, {v.reason}, "
               f"{exp.page_words} page words)")
-        _print_explanation(exp.url_model, "URL model:")
-        _print_explanation(exp.page_model, "page model:")
+        _print_explanation(exp.url_model, "URL model:", top=args.top)
+        _print_explanation(exp.page_model, "page model:", top=args.top)
     return EXIT_PARTIAL if bad else EXIT_OK
 
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
     from cascade.bundle import ModelBundle
-    from cascade.evaluate import evaluate_proba
+    from cascade.evaluate import evaluate_proba, per_class_change
 
     bundle = ModelBundle.load(args.model)
     model = bundle.url_model
     stats = ReadStats()
-    keys, labels, counts, _, _ = _load_labelled(args, stats)
+    keys, labels, counts, _, extras = _load_labelled(args, stats)
     _labels_known(labels, model.classes_, args.input)
     if not keys:
         raise DataError(f"{args.input}: no usable labelled rows")
-    metrics = evaluate_proba(model.predict_proba(keys), labels, model.classes_, counts=counts,
-                             precision_target=args.precision_target)
+    risk = {c.name: c.risk for c in bundle.taxonomy.categories}
+    weighted = counts if any(c != 1 for c in counts) else None
+    pu = bundle.url_proba(keys)
+    metrics = evaluate_proba(pu, labels, model.classes_, counts=weighted,
+                             precision_target=args.precision_target, risk=risk)
     metrics["model_version"] = bundle.version
+    if args.pages is not None:
+        if not bundle.has_pages:
+            raise DataError(f"{args.model}: no page model here (train with pages), so there "
+                            "is no fused verdict to evaluate")
+        pages = _pages(args, extras, "evaluate")
+        with_page = sum(p is not None for p in pages)
+        if not with_page:
+            raise DataError(f"{args.input}: no row has a saved page (a 'page' column naming "
+                            f"a file under {args.pages})")
+        fused = evaluate_proba(bundle.predict_proba(keys, pages, url_proba=pu), labels,
+                               model.classes_, counts=weighted,
+                               precision_target=args.precision_target, risk=risk)
+        change = per_class_change(metrics, fused)
+        metrics = {"url_model": metrics, "fused": {**fused, "rows_with_a_page": with_page},
+                   "fusion_change": change, "model_version": bundle.version}
+        for name in change["worse"]:
+            row = change["per_class"][name]
+            _eprint(f"evaluate: warning: fusion makes {name!r} worse: F1 "
+                    f"{row['f1_before']:.3f} with the URL model alone, {row['f1_after']:.3f} "
+                    "fused")
     _write_json(metrics, args.output)
     return _finish({"evaluated": len(keys)}, stats, args.quiet)
 
@@ -325,20 +459,32 @@ def cmd_fetch(args: argparse.Namespace) -> int:
     stats = ReadStats()
     urls = [rec.url for rec in _input_records(args, stats)]
 
-    async def run() -> int:
+    async def run(out: Any) -> int:
         failed = 0
         async with Fetcher(policy, resolver) as fetcher:
-            with open_writer(args.output) as out:
-                async for result in fetcher.fetch_many(urls):
-                    row = result.to_dict(with_text=True)
-                    if row["text"] is not None and not args.full_text:
-                        row["text"] = row["text"][:args.text_chars]
-                    out.write(row)
-                    failed += not result.ok
+            async for result in fetcher.fetch_many(urls):
+                row = result.to_dict(with_text=True)
+                if row["text"] is not None and not args.full_text:
+                    row["text"] = row["text"][:args.text_chars]
+                out.write(row)
+                failed += not result.ok
         return failed
 
-    failed = asyncio.run(run())
-    return _finish({"fetched": len(urls), "not_ok": failed}, stats, args.quiet)
+    # the writer outside the event loop: an interrupt reaches it and keeps the rows
+    with open_writer(args.output) as out:
+        failed = asyncio.run(run(out))
+    code = _finish({"fetched": len(urls), "not_ok": failed}, stats, args.quiet)
+    return _all_failed(args, len(urls), failed) or code
+
+
+def _all_failed(args: argparse.Namespace, tried: int, failed: int) -> int:
+    """``EXIT_NO_FETCH`` (and a line saying so) when fetches were tried and none worked."""
+    if tried and failed >= tried:
+        if not args.quiet:
+            _eprint(f"{args.command}: every fetch failed ({failed} of {tried}); see the "
+                    "outcomes in the output (network, DNS, the address guard, robots.txt)")
+        return EXIT_NO_FETCH
+    return 0
 
 
 def cmd_refine(args: argparse.Namespace) -> int:
@@ -354,24 +500,35 @@ def cmd_refine(args: argparse.Namespace) -> int:
     stats = ReadStats()
     keyed = list(_keyed(args, stats))
 
-    async def run() -> dict[str, int]:
+    records: dict[str, list[InputRecord]] = {}
+    for rec, k in keyed:
+        records.setdefault(k.url, []).append(rec)
+    failed = 0
+
+    async def run(out: Any) -> dict[str, int]:
+        nonlocal failed
         counts: dict[str, int] = {}
         async with Fetcher(policy, resolver) as fetcher:
-            with open_writer(args.output) as out:
-                async for result in fetcher.fetch_many([k.url for _, k in keyed]):
-                    (verdict,) = bundle.verdicts([result.url], fetches=[result], top_k=args.top)
-                    row = verdict.to_dict()
-                    row["fetch"] = {"outcome": str(result.outcome), "status": result.status,
-                                    "bytes_read": result.bytes_read,
-                                    "elapsed_ms": round(result.elapsed_ms, 1),
-                                    "detail": result.detail}
-                    out.write(row)
-                    counts[str(verdict.reason)] = counts.get(str(verdict.reason), 0) + 1
+            async for result in fetcher.fetch_many(list(records)):
+                (verdict,) = bundle.verdicts([result.url], fetches=[result], top_k=args.top)
+                failed += not result.ok
+                first = records.get(result.url, [None])[0]
+                row = verdict.to_dict() if first is None else _joined(first,
+                                                                      verdict.to_dict())
+                row["fetch"] = {"outcome": str(result.outcome), "status": result.status,
+                                "bytes_read": result.bytes_read,
+                                "elapsed_ms": round(result.elapsed_ms, 1),
+                                "detail": result.detail}
+                out.write(row)
+                counts[str(verdict.reason)] = counts.get(str(verdict.reason), 0) + 1
         return counts
 
-    counts = asyncio.run(run())
-    return _finish({"refined": sum(counts.values()), "by_reason": counts,
-                    "model_version": bundle.version}, stats, args.quiet)
+    # the writer outside the event loop: an interrupt reaches it and keeps the fetched rows
+    with open_writer(args.output) as out:
+        counts = asyncio.run(run(out))
+    code = _finish({"refined": sum(counts.values()), "by_reason": counts,
+                    "fetch_failed": failed, "model_version": bundle.version}, stats, args.quiet)
+    return _all_failed(args, sum(counts.values()), failed) or code
 
 
 def _budget(args: argparse.Namespace) -> Any:
@@ -435,10 +592,17 @@ def cmd_report(args: argparse.Namespace) -> int:
     classes = bundle.classes
     _labels_known(labels, classes, args.input)
     y = np.array([classes.index(lab) for lab in labels])
+    if not bundle.has_pages:
+        raise DataError(f"{args.model}: a URL-only model (no page model): a fetch could not "
+                        "change any verdict, so every budget would buy nothing. Train with "
+                        "pages ('cascade train --pages'), or use 'cascade evaluate' for the "
+                        "URL model alone")
     pages = _pages(args, extras, "report")
     with_page = sum(p is not None for p in pages)
-    if not bundle.has_pages or not with_page:
-        _eprint("report: no pages (or no page model): every fetch keeps the URL verdict")
+    if not with_page:
+        raise DataError(f"{args.input}: no row has a saved page (a 'page' column naming a "
+                        "file under --pages): the report measures what fetching buys, and "
+                        "without pages nothing can be measured")
     pu = bundle.url_proba(keys)
     shift: dict[str, Any] | None = None
     if args.prior_shift:  # the labels only describe the result; EM does not read them
@@ -451,7 +615,15 @@ def cmd_report(args: argparse.Namespace) -> int:
                                 urls=keys)["gain"]
     weighted = any(c != 1 for c in counts)
     extra_context = {} if shift is None else {"prior shift": shift["note"]}
+    fetch_costs = None
+    if args.fetch_history:
+        from cascade.fetch_history import read_fetch_history
+
+        fetch_costs = read_fetch_history(args.fetch_history, ReadStats())
     rep = build_report(y, pu, pf, gain, classes, costs=bundle.taxonomy.costs(classes),
+                       fetch_costs=fetch_costs, concurrency=args.concurrency,
+                       domains=[k.registered_domain or k.host for k in keys],
+                       risk={c.name: c.risk for c in bundle.taxonomy.categories},
                        counts=counts if weighted else None,
                        operating_budget=args.operating_budget,
                        precision_target=args.precision_target, seeds=args.seeds,
@@ -586,6 +758,47 @@ def _add_input(p: argparse.ArgumentParser, required: bool = True) -> None:
                         "seen_at), or JSON Lines; .gz accepted; '-' for stdin")
     p.add_argument("--input-format", choices=["txt", "csv", "tsv", "jsonl"],
                    help="override the format guessed from the name or first line")
+    p.add_argument("--url-column", metavar="NAME",
+                   help="the input's column (or JSON key) holding the URL or host "
+                        "(default: url)")
+    p.add_argument("--label-column", metavar="NAME",
+                   help="the input's column (or JSON key) holding the category "
+                        "(default: label)")
+    p.add_argument("--delimiter", type=_delimiter, metavar="CHAR",
+                   help="CSV column separator, e.g. ';' or 'tab' (default: ',' for CSV, "
+                        "tab for TSV; ';' and '|' headers are recognised)")
+
+
+def _whole(minimum: int) -> Any:
+    """An argparse type: a whole number of at least ``minimum`` (else a usage error)."""
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(f"must be at least {minimum}, not {value}")
+        return value
+    parse.__name__ = "whole number"
+    return parse
+
+
+def _share_value(text: str) -> float:
+    """An argparse type: a share from 0 to 1, as ``0.3`` or ``30%`` (``budget.parse_share``)."""
+    from cascade.budget import parse_share
+
+    try:
+        return parse_share(text, what="value")
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _delimiter(text: str) -> str:
+    value = "\t" if text in ("\\t", "tab", "TAB") else text
+    if len(value) != 1:
+        raise argparse.ArgumentTypeError(f"a delimiter is one character (or 'tab'), not "
+                                         f"{text!r}")
+    return value
 
 
 def _add_prior_shift(p: argparse.ArgumentParser, batch: str) -> None:
@@ -621,9 +834,10 @@ def _add_fetch_options(p: argparse.ArgumentParser) -> None:
                         "%(default)s)")
     p.add_argument("--max-bytes", type=int, default=default.max_bytes,
                    help="bytes read off the wire per response (default: %(default)s)")
-    p.add_argument("--max-redirects", type=int, default=default.max_redirects,
+    p.add_argument("--max-redirects", type=_whole(0), default=default.max_redirects,
                    help="redirects followed per fetch (default: %(default)s)")
-    p.add_argument("--per-host-concurrency", type=int, default=default.per_host_concurrency,
+    p.add_argument("--per-host-concurrency", type=_whole(1),
+                   default=default.per_host_concurrency,
                    metavar="N", help="fetches in flight at once to one host "
                                      "(default: %(default)s)")
     p.add_argument("--per-host-delay", type=float, default=default.per_host_delay_s,
@@ -651,6 +865,10 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"cascade {__version__}")
     parser.add_argument("--quiet", "-q", action="store_true",
                         help="no progress and no summary on stderr")
+    parser.add_argument("--config", metavar="FILE",
+                        help="TOML file of settings a team sets once (fetch policy, columns, "
+                             "budgets, outputs; docs in cascade/config.py); options given "
+                             "on the command line win (default: $CASCADE_CONFIG, else none)")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     def command(name: str, help_text: str) -> argparse.ArgumentParser:
@@ -671,28 +889,56 @@ def build_parser() -> argparse.ArgumentParser:
                         "before the final fit on all rows; 0 to skip (default 0.2)")
     p.add_argument("--no-group", action="store_true",
                    help="do not keep each registered domain on one side of the holdout")
-    p.add_argument("--ngram-min", type=int, default=1)
-    p.add_argument("--ngram-max", type=int, default=4)
-    p.add_argument("--hash-bits", type=int, default=20, help="log2 of the hashing space")
+    # None: the URL model's own default (``URL_MODEL_DEFAULTS`` is checked against
+    # ``UrlModel``'s signature by a test, so the help cannot drift from the library)
+    d = URL_MODEL_DEFAULTS
+    p.add_argument("--ngram-min", type=int, default=None,
+                   help=f"shortest character n-gram of the URL model (default {d['ngram_min']})")
+    p.add_argument("--ngram-max", type=int, default=None,
+                   help=f"longest character n-gram (default {d['ngram_max']})")
+    p.add_argument("--hash-bits", type=int, default=None,
+                   help=f"log2 of the hashing space (default {d['hash_bits']})")
     p.add_argument("--no-tokens", action="store_true", help="character n-grams only")
-    p.add_argument("--C", type=float, default=20.0, help="inverse L2 strength")
-    p.add_argument("--max-iter", type=int, default=150)
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--C", type=float, default=None,
+                   help=f"inverse L2 strength of the URL model (default {d['C']:g}; chosen by "
+                        "grouped cross-validation, docs/url-model-sweep.md)")
+    p.add_argument("--tol", type=float, default=None,
+                   help=f"the fit stops when the largest gradient component is below it "
+                        f"(default {d['tol']:g})")
+    p.add_argument("--max-iter", type=int, default=None,
+                   help=f"safety bound on solver iterations; reaching it warns "
+                        f"(default {d['max_iter']})")
+    p.add_argument("--class-balance", type=float, default=None,
+                   help="weight rows by (1 / class frequency) ** this; 0: no weighting "
+                        f"(default {d['class_balance']:g})")
+    p.add_argument("--seed", type=int, default=0,
+                   help="fixes hashing, folds and the holdout; recorded in the model "
+                        "(default 0)")
     p.add_argument("--pages", help="folder of saved pages named by the input's 'page' column "
                                    "(default: the input file's folder)")
-    p.add_argument("--folds", type=int, default=4,
+    p.add_argument("--folds", type=_whole(2), default=4,
                    help="folds for stacking the page model and fusion (default 4)")
+    p.add_argument("--fold-case", action="store_true",
+                   help="merge labels that differ only in case ('Media sharing', 'Media "
+                        "Sharing') into the taxonomy's spelling, else the most common one "
+                        "(default: warn and keep them apart)")
+    p.add_argument("--absent-categories", choices=["keep", "drop"], default="keep",
+                   help="taxonomy categories with no training row: keep them (never "
+                        "predicted until rows exist) or drop them from the model; either "
+                        "way they are named in a warning (default keep)")
     p.set_defaults(func=cmd_train)
 
     p = command("score", "Score URLs with a URL model; writes one verdict per URL.")
     p.add_argument("urls", nargs="*", help="URLs to score (instead of --input)")
     _add_input(p, required=False)
-    p.add_argument("--model", "-m", required=True)
-    p.add_argument("--output", "-o", default="-", help="output file ('-' stdout; .gz ok)")
+    p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
+    p.add_argument("--output", "-o", default="-",
+                   help="output file ('-': stdout; .gz ok; default -)")
     p.add_argument("--output-format", choices=["jsonl", "csv"], default=None,
                    help="default: from the output name, else jsonl")
-    p.add_argument("--top", type=int, default=3, help="best categories kept per URL")
-    p.add_argument("--fetch-below", type=float, default=0.8,
+    p.add_argument("--top", type=_whole(1), default=3,
+                   help="best categories kept per URL (default 3)")
+    p.add_argument("--fetch-below", type=_share_value, default=0.8,
                    help="mark needs_fetch when confidence is under this (default 0.8)")
     p.set_defaults(func=cmd_score)
 
@@ -701,25 +947,34 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("urls", nargs="+")
     p.add_argument("--page", help="a saved HTML page of the (single) URL: also explain the "
                                   "page model's verdict and show the fused one")
-    p.add_argument("--model", "-m", required=True)
-    p.add_argument("--top", type=int, default=8, help="features shown per class")
-    p.add_argument("--classes", type=int, default=2, help="most probable classes shown")
+    p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
+    p.add_argument("--top", type=_whole(1), default=8,
+                   help="features shown per class (default 8)")
+    p.add_argument("--classes", type=_whole(1), default=2,
+                   help="most probable classes shown (default 2)")
     p.add_argument("--json", action="store_true", help="JSON Lines instead of text")
     p.set_defaults(func=cmd_explain)
 
     p = command("evaluate", "Measure a model on a labelled file (metrics as JSON).")
     _add_input(p)
-    p.add_argument("--model", "-m", required=True)
-    p.add_argument("--output", "-o", help="write the JSON here instead of stdout")
-    p.add_argument("--precision-target", type=float, default=0.9)
+    p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
+    p.add_argument("--output", "-o", default="-",
+                   help="write the JSON here ('-': stdout; default -)")
+    p.add_argument("--pages", help="folder of saved pages named by the input's 'page' column: "
+                                   "also evaluate the fused verdict, and flag categories "
+                                   "that fusion makes worse")
+    p.add_argument("--precision-target", type=_share_value, default=PRECISION_TARGET,
+                   help="precision at which the recall figure is read, per category "
+                        "(default %(default)s, as in 'report')")
     p.set_defaults(func=cmd_evaluate)
 
     p = command("fetch", "Fetch pages through the sandboxed fetcher; one JSON result a URL.")
     p.add_argument("urls", nargs="*", help="URLs to fetch (instead of --input)")
     _add_input(p, required=False)
-    p.add_argument("--output", "-o", default="-")
+    p.add_argument("--output", "-o", default="-",
+                   help="output file, JSON Lines ('-': stdout; .gz ok; default -)")
     _add_fetch_options(p)
-    p.add_argument("--text-chars", type=int, default=2000,
+    p.add_argument("--text-chars", type=_whole(0), default=2000,
                    help="characters of page text kept in the output (default 2000)")
     p.add_argument("--full-text", action="store_true", help="keep the whole page text")
     p.set_defaults(func=cmd_fetch)
@@ -729,8 +984,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("urls", nargs="*", help="URLs to refine (instead of --input)")
     _add_input(p, required=False)
     p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
-    p.add_argument("--output", "-o", default="-")
-    p.add_argument("--top", type=int, default=3, help="best categories kept per URL")
+    p.add_argument("--output", "-o", default="-",
+                   help="output file, JSON Lines ('-': stdout; .gz ok; default -)")
+    p.add_argument("--top", type=_whole(1), default=3,
+                   help="best categories kept per URL (default 3)")
     _add_fetch_options(p)
     p.set_defaults(func=cmd_refine)
 
@@ -740,17 +997,19 @@ def build_parser() -> argparse.ArgumentParser:
     _add_input(p, required=False)
     p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
     p.add_argument("--budget", "-b", required=True,
-                   help="most fetches: a number (500) or a share of the URLs (10%%)")
+                   help="most fetches: a number (500) or a share of the URLs (10%% or 0.1)")
     p.add_argument("--budget-bytes", help="also cap expected bytes (e.g. 500MB, 2GiB)")
     p.add_argument("--budget-seconds", help="also cap summed fetch time, in seconds")
     p.add_argument("--fetch-history",
-                   help="earlier 'cascade fetch' output (JSON Lines): learn per-domain "
-                        "failure rate, bytes and time from it")
+                   help="earlier 'cascade fetch' or 'cascade refine' output (JSON Lines): "
+                        "learn per-domain failure rate, bytes and time from it")
     p.add_argument("--min-gain", type=float, default=0.0,
-                   help="never fetch a URL whose expected gain is not above this")
+                   help="never fetch a URL whose expected gain is not above this "
+                        "(default 0)")
     p.add_argument("--all", action="store_true",
                    help="also write the URLs left out, each with its reason")
-    p.add_argument("--output", "-o", default="-")
+    p.add_argument("--output", "-o", default="-",
+                   help="the fetch list, JSON Lines ('-': stdout; default -)")
     p.set_defaults(func=cmd_plan)
 
     p = command("report", "Measure what each fetch budget buys on a labelled file with saved "
@@ -758,21 +1017,37 @@ def build_parser() -> argparse.ArgumentParser:
     _add_input(p)
     p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
     p.add_argument("--pages", help="folder of saved pages named by the input's 'page' column")
-    p.add_argument("--out", required=True, help="folder for report.html, report.json, PNGs")
-    p.add_argument("--operating-budget", type=float, default=0.3,
-                   help="share of URLs fetched for the 'after' figures (default 0.3)")
-    p.add_argument("--precision-target", type=float, default=0.95)
-    p.add_argument("--seeds", type=int, default=5, help="random-order repeats (default 5)")
-    p.add_argument("--title", default="cascade budget report")
+    p.add_argument("--output", "-o", "--out", dest="out", required=True,
+                   help="folder for report.html, report.json, PNGs")
+    p.add_argument("--operating-budget", type=_share_value, default=0.3,
+                   help="share of URLs fetched for the 'after' figures: 30%% or 0.3 "
+                        "(default 0.3)")
+    p.add_argument("--precision-target", type=_share_value, default=PRECISION_TARGET,
+                   help="precision at which the recall figure is read, per category "
+                        "(default %(default)s, as in 'evaluate')")
+    p.add_argument("--seeds", type=_whole(1), default=5,
+                   help="random-order repeats (default 5)")
+    p.add_argument("--fetch-history",
+                   help="earlier 'cascade fetch' or 'refine' output (JSON Lines): budget rows "
+                        "in bytes, seconds and failures measured per domain (default: "
+                        "assumed costs, every fetch succeeding, said in the report)")
+    p.add_argument("--concurrency", type=_whole(1), default=64,
+                   help="fetches in flight, for the wall-clock column (default 64)")
+    p.add_argument("--title", default="cascade budget report",
+                   help="the report's heading (default: %(default)s)")
     _add_prior_shift(p, "the labelled file's URLs (labels unused)")
     p.set_defaults(func=cmd_report)
 
     p = command("demo", "Run the whole job on the invented demo scenario into a folder.")
-    p.add_argument("--out", default="demo-output", help="report folder (default demo-output)")
-    p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--sites", type=int, default=2000, help="invented sites (default 2000)")
-    p.add_argument("--budget", type=float, default=0.3,
-                   help="share of the night's URLs the plan may fetch (default 0.3)")
+    p.add_argument("--output", "-o", "--out", dest="out", default="demo-output",
+                   help="report folder (default demo-output)")
+    p.add_argument("--seed", type=int, default=0,
+                   help="seed of the invented scenario and of every fit (default 0)")
+    p.add_argument("--sites", type=_whole(1), default=2000,
+                   help="invented sites (default 2000)")
+    p.add_argument("--budget", type=_share_value, default=0.3,
+                   help="share of the night's URLs the plan may fetch: 30%% or 0.3 "
+                        "(default 0.3)")
     p.set_defaults(func=cmd_demo)
 
     p = command("night", "The nightly job: read a day's lookup log, refine the uncertain URLs "
@@ -780,17 +1055,19 @@ def build_parser() -> argparse.ArgumentParser:
                          "and a report. Killed, the same command resumes it.")
     p.add_argument("--log", "-l", required=True,
                    help="the lookup log (plain, CSV/TSV, JSON Lines; .gz ok)")
-    p.add_argument("--input-format", choices=["txt", "csv", "tsv", "jsonl"])
+    p.add_argument("--input-format", choices=["txt", "csv", "tsv", "jsonl"],
+                   help="override the format guessed from the log's name or first line")
     p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
     p.add_argument("--store", "-s", required=True, help="verdict store (a .sqlite file)")
-    p.add_argument("--out", required=True, help="folder for the changes, review queue, report")
+    p.add_argument("--output", "-o", "--out", dest="out", required=True,
+                   help="folder for the changes, review queue, report")
     p.add_argument("--budget", "-b", required=True,
                    help="most fetches: a number (500) or a share of the URLs (10%%)")
     p.add_argument("--budget-bytes", help="also cap bytes (e.g. 500MB, 2GiB)")
     p.add_argument("--budget-seconds", help="also cap summed fetch time, in seconds")
-    p.add_argument("--fetch-below", type=float, default=0.8,
+    p.add_argument("--fetch-below", type=_share_value, default=0.8,
                    help="a URL verdict under this confidence wants a fetch (default 0.8)")
-    p.add_argument("--review-size", type=int, default=500,
+    p.add_argument("--review-size", type=_whole(0), default=500,
                    help="URLs in the analyst review queue (default 500)")
     p.add_argument("--no-history", action="store_true",
                    help="plan without the store's fetch costs and domain history")
@@ -817,21 +1094,28 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--port", type=int, default=8787, help="port (default 8787)")
     p.add_argument("--token-file", help="file whose first line is the bearer token "
                                         "(default: the CASCADE_SERVE_TOKEN variable)")
-    p.add_argument("--fetch-below", type=float, default=0.8,
+    p.add_argument("--fetch-below", type=_share_value, default=0.8,
                    help="a verdict under this confidence is queued for a fetch (default 0.8)")
     p.add_argument("--no-domain-fallback", action="store_true",
                    help="do not answer an unknown URL with its domain's stored verdict")
     p.add_argument("--no-queue", action="store_true",
                    help="do not write URLs worth a fetch to the store's refine queue")
-    p.add_argument("--cache-size", type=int, default=65_536,
+    p.add_argument("--cache-size", type=_whole(0), default=65_536,
                    help="decisions kept in memory (default 65536)")
-    p.add_argument("--max-body-bytes", type=int, default=1 << 20,
+    p.add_argument("--max-body-bytes", type=_whole(1), default=1 << 20,
                    help="largest request body (default 1048576)")
-    p.add_argument("--max-batch", type=int, default=10_000,
+    p.add_argument("--max-batch", type=_whole(1), default=10_000,
                    help="most URLs in one request (default 10000)")
     p.add_argument("--access-log", action="store_true",
                    help="one JSON line per request on stderr")
     p.set_defaults(func=cmd_serve)
+
+    p = command("config", "Print the settings in effect for a command: each option's value "
+                          "and whether it comes from the --config file or the default.")
+    p.add_argument("command_name", metavar="COMMAND", choices=[
+        "train", "score", "explain", "evaluate", "fetch", "refine", "plan", "report", "demo",
+        "night", "serve", "store"], help="the command whose settings to show")
+    p.set_defaults(func=cmd_config)
 
     p = command("store", "Look after the verdict store: export, import, training file, an "
                          "analyst's label, counts.")
@@ -847,18 +1131,168 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _nearest_folder(path: Path) -> Path:
+    here = path.absolute()
+    while not here.exists() and here != here.parent:
+        here = here.parent
+    return here
+
+
+def _check_file_target(text: str, option: str) -> None:
+    path = Path(text)
+    if path.is_dir():
+        raise UsageError(f"{option} {text}: is a folder; give a file name")
+    folder = path.parent
+    if not folder.is_dir():
+        raise UsageError(f"{option} {text}: the folder {folder} does not exist; create it "
+                         "first")
+    if not os.access(folder, os.W_OK):
+        raise UsageError(f"{option} {text}: cannot write in {folder}")
+
+
+def _check_folder_target(text: str, option: str) -> None:
+    path = Path(text)
+    if path.exists() and not path.is_dir():
+        raise UsageError(f"{option} {text}: exists and is not a folder")
+    if not os.access(_nearest_folder(path), os.W_OK):
+        raise UsageError(f"{option} {text}: cannot create or write it here")
+
+
+def _check_model_target(text: str) -> None:
+    from cascade.models.model_files import META_FILE
+
+    path = Path(text)
+    if path.exists() and not path.is_dir():
+        raise UsageError(f"--model {text}: exists and is a file; give a directory to write "
+                         "the model to")
+    if path.is_dir() and not (path / META_FILE).exists() and any(path.iterdir()):
+        raise UsageError(f"--model {text}: exists and is not a model directory; refusing to "
+                         "overwrite it (give a new or an empty directory)")
+    if not os.access(_nearest_folder(path.parent if not path.exists() else path), os.W_OK):
+        raise UsageError(f"--model {text}: cannot write there")
+
+
+def _preflight(args: argparse.Namespace) -> None:
+    """Check the options and every output path before any work: a fit or a night must not
+    run for minutes and then fail on a path or an option."""
+    if getattr(args, "urls", None) and getattr(args, "input", None):
+        raise UsageError(f"give URLs on the command line or --input {args.input}, not both "
+                         f"({len(args.urls)} URL(s) given)")
+    output = getattr(args, "output", None)
+    if isinstance(output, str) and output != "-" and args.command != "store":
+        _check_file_target(output, "--output")
+    out = getattr(args, "out", None)
+    if isinstance(out, str):
+        _check_folder_target(out, "--output")
+    if args.command == "train":
+        _check_model_target(args.model)
+
+
+def _on_sigterm(signum: int, frame: Any) -> None:
+    raise Terminated
+
+
+def _subparsers(parser: argparse.ArgumentParser) -> dict[str, argparse.ArgumentParser]:
+    action = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    return dict(action.choices)
+
+
+def _apply_config(parser: argparse.ArgumentParser, settings: dict[str, Any]
+                  ) -> dict[str, list[str]]:
+    """Make the file's settings the defaults of every command that has the option (the
+    command line still wins); returns which commands each setting reached."""
+    reached: dict[str, list[str]] = {dest: [] for dest in settings}
+    for name, sub in _subparsers(parser).items():
+        values = {}
+        for action in sub._actions:
+            if action.dest not in settings or not action.option_strings:
+                continue
+            value = settings[action.dest]
+            convert = action.type or (lambda v: v)
+            try:
+                if isinstance(action, argparse._AppendAction):
+                    value = [convert(v) if isinstance(v, str) else v for v in value]
+                elif isinstance(action, argparse._StoreTrueAction):
+                    value = bool(value)
+                elif isinstance(value, str) or action.type is not None:
+                    value = convert(value if isinstance(value, str) else str(value))
+            except (argparse.ArgumentTypeError, ValueError) as exc:
+                raise UsageError(f"--config: {action.dest}: {exc}") from None
+            if action.choices is not None and value not in action.choices:
+                raise UsageError(f"--config: {action.dest} must be one of "
+                                 f"{list(action.choices)}, not {value!r}")
+            values[action.dest] = value
+            action.required = False  # the file gave it
+            reached[action.dest].append(name)
+        if values:
+            sub.set_defaults(**values)
+    return reached
+
+
+def cmd_config(args: argparse.Namespace) -> int:
+    """The settings in effect for one command: each option's value and where it came from
+    (the command line, the config file, or the built-in default)."""
+    parser = build_parser()
+    settings = load_settings(args.config)
+    _apply_config(parser, settings)
+    target = _subparsers(parser)[args.command_name]
+    out: dict[str, Any] = {"config_file": _config_path(args.config), "command":
+                           args.command_name, "options": {}}
+    for action in target._actions:
+        if not action.option_strings or action.dest in ("help", "quiet"):
+            continue
+        source = "config file" if action.dest in settings else "default"
+        out["options"][action.option_strings[0]] = {"value": action.default,
+                                                    "from": source}
+    print(json.dumps(out, indent=2, default=str))
+    return EXIT_OK
+
+
+def _config_path(given: str | None) -> str | None:
+    return given or os.environ.get("CASCADE_CONFIG") or None
+
+
+def load_settings(given: str | None) -> dict[str, Any]:
+    from cascade.config import load_config
+
+    path = _config_path(given)
+    return load_config(path) if path else {}
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run one command; returns its exit code (``EXIT_CODES``), never raises for the
     user's mistakes."""
     parser = build_parser()
+    pre = argparse.ArgumentParser(add_help=False)
+    pre.add_argument("--config")
+    known, _ = pre.parse_known_args(argv)
+    try:
+        _apply_config(parser, load_settings(known.config))
+    except UsageError as exc:
+        _eprint(f"cascade: error: {exc}")
+        return EXIT_USAGE
     args = parser.parse_args(argv)
     if not hasattr(args, "quiet"):
         args.quiet = False
+    previous = None
+    try:  # SIGTERM unwinds like Ctrl-C (only the main thread may set a handler)
+        previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    except ValueError:
+        previous = None
     try:
+        _preflight(args)
         return int(args.func(args))
-    except KeyboardInterrupt:
-        _eprint(f"cascade {args.command}: interrupted")
-        return EXIT_INTERRUPTED
+    except KeyboardInterrupt as exc:
+        code = EXIT_TERMINATED if isinstance(exc, Terminated) else EXIT_INTERRUPTED
+        how = "stopped by SIGTERM" if code == EXIT_TERMINATED else "interrupted"
+        _eprint(f"cascade {args.command}: {how} (exit {code})")
+        for path, rows in getattr(exc, "partial_outputs", []):
+            _eprint(f"cascade {args.command}: the {rows} rows written so far are kept in "
+                    f"{path} (each with its input line number, 'line'); run the command "
+                    "again for the whole output" + (
+                        "; 'cascade night' resumes where it stopped" if args.command ==
+                        "night" else ""))
+        return code
     except BrokenPipeError:
         return EXIT_OK
     except Exception as exc:  # noqa: BLE001 - every error becomes an exit code here
@@ -871,6 +1305,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         else:
             _eprint(f"cascade {args.command}: error: {exc}")
         return code
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -9,7 +9,7 @@ can keep every registered domain on one side only.
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -18,7 +18,7 @@ import numpy as np
 from cascade.metrics import summarize
 from cascade.urls import UrlKey
 
-__all__ = ["Split", "evaluate_proba", "evaluation_split"]
+__all__ = ["Split", "evaluate_proba", "evaluation_split", "per_class_change", "risk_breakdown"]
 
 
 @dataclass(frozen=True)
@@ -102,14 +102,69 @@ def evaluate_proba(
     labels: Sequence[str],
     classes: Sequence[str],
     counts: Sequence[int] | None = None,
-    precision_target: float = 0.9,
+    precision_target: float = 0.95,
+    risk: Mapping[str, str] | None = None,
 ) -> dict[str, Any]:
-    """All headline metrics (plain and weighted by lookup count) as a JSON-ready dict."""
+    """All headline metrics (plain and weighted by lookup count) as a JSON-ready dict.
+
+    With ``risk`` (category -> the taxonomy's risk level), a ``by_risk`` section says how
+    often a high-risk page was put in a low-risk category (under-blocking: a policy that
+    blocks the high-risk categories lets it through) and the reverse (over-blocking)."""
     index = {c: i for i, c in enumerate(classes)}
     unknown = sorted({lab for lab in labels if lab not in index})
     if unknown:
         raise ValueError(f"labels not among the model's classes: {unknown[:10]}")
     y = np.array([index[lab] for lab in labels], dtype=np.int64)
     weight = None if counts is None else np.asarray(counts, dtype=np.float64)
-    return summarize(y, proba, list(classes), sample_weight=weight,
-                     precision_target=precision_target)
+    out = summarize(y, proba, list(classes), sample_weight=weight,
+                    precision_target=precision_target)
+    if risk is not None:
+        out["by_risk"] = risk_breakdown(y, np.asarray(proba).argmax(axis=1), list(classes),
+                                        risk)
+    return out
+
+
+def risk_breakdown(y: np.ndarray, pred: np.ndarray, classes: Sequence[str],
+                   risk: Mapping[str, str]) -> dict[str, Any]:
+    """Accuracy per risk level, and the two ways a category error crosses the line between
+    high- and low-risk categories (counts and shares of the rows on the true side)."""
+    high = np.array([risk.get(c, "low") == "high" for c in classes])
+    true_high, pred_high = high[y], high[pred]
+    levels: dict[str, Any] = {}
+    for level in sorted({risk.get(c, "low") for c in classes}):
+        rows = np.array([risk.get(classes[i], "low") == level for i in y])
+        levels[level] = {"rows": int(rows.sum()),
+                         "accuracy": float((pred[rows] == y[rows]).mean()) if rows.any()
+                         else None}
+    n_high, n_low = int(true_high.sum()), int((~true_high).sum())
+    under = int((true_high & ~pred_high).sum())
+    over = int((~true_high & pred_high).sum())
+    return {
+        "high_risk_categories": [c for c, h in zip(classes, high, strict=True) if h],
+        "levels": levels,
+        "under_blocking": {"rows": under, "share_of_high_risk_rows":
+                           under / n_high if n_high else None,
+                           "means": "a high-risk row put in a low-risk category"},
+        "over_blocking": {"rows": over, "share_of_low_risk_rows":
+                          over / n_low if n_low else None,
+                          "means": "a low-risk row put in a high-risk category"},
+    }
+
+
+def per_class_change(before: dict[str, Any], after: dict[str, Any],
+                     worse_by: float = 0.02) -> dict[str, Any]:
+    """F1 per category from one set of metrics to another (URL model alone -> fused), and
+    the categories that got worse by more than ``worse_by``: fusion raises the average and
+    can still hurt single categories."""
+    rows = {}
+    worse = []
+    for name, b in before["per_class"].items():
+        a = after["per_class"][name]
+        if b["f1"] is None or a["f1"] is None:
+            rows[name] = {"f1_before": b["f1"], "f1_after": a["f1"], "change": None}
+            continue
+        change = a["f1"] - b["f1"]
+        rows[name] = {"f1_before": b["f1"], "f1_after": a["f1"], "change": change}
+        if change < -worse_by:
+            worse.append(name)
+    return {"per_class": rows, "worse": worse, "worse_by_more_than": worse_by}

@@ -49,6 +49,8 @@ MAX_CSV_ROW_LINES = 64
 """Most physical lines one CSV row (a quoted field with newlines) may span."""
 SAMPLE_CHARS = 200
 GZIP_MAGIC = b"\x1f\x8b"
+SNIFF_BYTES = 8192
+"""Bytes looked at to tell text from binary (and UTF-16 by its byte-order mark)."""
 
 InputSource: TypeAlias = "str | os.PathLike[str] | IO[str] | IO[bytes] | Iterable[str]"
 
@@ -382,21 +384,22 @@ def _header_fields(line: str, delimiter: str) -> list[str]:
     return [f.strip().lower() for f in row]
 
 
-def _sniff(line: str) -> str:
-    """Guess the format from the first significant line of a file."""
+def _sniff(line: str, url_name: str = "url") -> tuple[str, str | None]:
+    """Guess the format (and a CSV delimiter other than the format's own) from the first
+    significant line of a file: a header naming the URL column makes it CSV/TSV."""
     text = line.strip()
     if text.startswith("{"):
-        return "jsonl"
-    if text.lower() in ("url", '"url"'):
-        return "csv"
-    for delimiter, fmt in (("\t", "tsv"), (",", "csv")):
+        return "jsonl", None
+    if text.lower() in (url_name, f'"{url_name}"'):
+        return "csv", None
+    for delimiter, fmt in (("\t", "tsv"), (",", "csv"), (";", "csv"), ("|", "csv")):
         if delimiter in text:
             fields = _header_fields(text, delimiter)
-            if "url" in fields and not any("://" in f for f in fields):
-                return fmt
+            if url_name in fields and not any("://" in f for f in fields):
+                return fmt, (delimiter if delimiter in ";|" else None)
     if text.startswith('"'):
-        return "jsonl"
-    return "txt"
+        return "jsonl", None
+    return "txt", None
 
 
 # --------------------------------------------------------------------------- readers
@@ -469,14 +472,15 @@ class _RowBroken(Exception):  # noqa: N818 - internal signal, never escapes this
 class _Columns:
     """Where the known columns are in a CSV header, and names for the extra ones."""
 
-    def __init__(self, header: list[str]) -> None:
+    def __init__(self, header: list[str], names: Mapping[str, str] | None = None) -> None:
         self.width = len(header)
         self.index: dict[str, int] = {}
         self.extra: list[tuple[int, str]] = []
         used: set[str] = set()
+        source = _source_names(names)
         for i, raw in enumerate(header):
             name = raw.strip()
-            key = name.lower()
+            key = source.get(name.lower(), name.lower())
             if key in _KNOWN_COLUMNS and key not in self.index:
                 self.index[key] = i
                 continue
@@ -492,6 +496,51 @@ class _Columns:
         return row[i] if i is not None and i < len(row) else None
 
 
+def _read_head(stream: Any) -> bytes:
+    """Up to ``SNIFF_BYTES`` first bytes (replayed to the reader afterwards); a damaged
+    ``.gz`` stops the look early, and the read itself then reports the damage."""
+    read = getattr(stream, "read1", None) or stream.read
+    head = b""
+    with contextlib.suppress(EOFError, zlib.error, gzip.BadGzipFile):
+        while len(head) < SNIFF_BYTES:
+            chunk = read(SNIFF_BYTES - len(head))
+            if not chunk:
+                break
+            head += chunk
+    return head
+
+
+def _binary_line(line: bytes) -> bool:
+    """A line no text file would hold: a NUL byte, or not UTF-8."""
+    if b"\x00" in line:
+        return True
+    try:
+        line.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        return exc.start < len(line) - 3  # a multi-byte character cut at the end is fine
+    return False
+
+
+def _text_encoding(head: bytes, name: str) -> str:
+    """The encoding to read a byte stream with, from its first bytes: UTF-16 when it starts
+    with a byte-order mark, else UTF-8; a stream that is not text (NUL bytes, or mostly
+    invalid UTF-8 in most of its first lines) raises ``InputFormatError`` instead of being
+    read as lines of garbage; a text file with a few bad lines is read, those lines counted."""
+    if head.startswith((b"\xff\xfe", b"\xfe\xff")):
+        return "utf-16"  # the byte-order mark says which end first; the decoder drops it
+    lines = [line for line in (head.split(b"\n")[:-1] if len(head) == SNIFF_BYTES
+                               else head.split(b"\n")) if line.strip()]
+    bad = [line for line in lines if _binary_line(line)]
+    if lines and len(bad) > len(lines) / 2:
+        what = ("it holds NUL bytes" if any(b"\x00" in line for line in bad) else
+                "its lines are not UTF-8")
+        raise InputFormatError(
+            f"{name}: not a text file ({what}: {len(bad)} of its first {len(lines)} lines); "
+            "give URLs as UTF-8 text, one per line, or CSV / JSON Lines (a UTF-16 file "
+            "without a byte-order mark: convert it to UTF-8 first)")
+    return "utf-8-sig"
+
+
 class RecordReader(Iterator[InputRecord]):
     """An open input file, iterated lazily as ``InputRecord``s. Made by ``read_records``.
 
@@ -505,8 +554,17 @@ class RecordReader(Iterator[InputRecord]):
         source: InputSource,
         fmt: str | None = None,
         stats: ReadStats | None = None,
+        columns: Mapping[str, str] | None = None,
+        delimiter: str | None = None,
     ) -> None:
         self.stats = stats if stats is not None else ReadStats()
+        bad = sorted(set(columns or {}) - set(_KNOWN_COLUMNS))
+        if bad:
+            raise ValueError(f"columns: unknown fields {bad}; known: {list(_KNOWN_COLUMNS)}")
+        if delimiter is not None and len(delimiter) != 1:
+            raise ValueError(f"delimiter must be one character, not {delimiter!r}")
+        self._names = dict(columns) if columns else None
+        self._delimiter = delimiter
         self._closers: list[Callable[[], None]] = []
         self._closed = False
         text, self.name = self._open(source)
@@ -569,10 +627,16 @@ class RecordReader(Iterator[InputRecord]):
             buffered: Any = io.BufferedReader(_Prefixed(binary, prefix), buffer_size=1 << 16)
             if prefix == GZIP_MAGIC:
                 buffered = gzip.GzipFile(fileobj=buffered, mode="rb")
+            head = _read_head(buffered)
+            encoding = _text_encoding(head, name)
+            buffered = io.BufferedReader(_Prefixed(buffered, head), buffer_size=1 << 16)
+        except InputFormatError:
+            self.close()
+            raise
         except (OSError, ValueError) as exc:
             self.close()
             raise InputFormatError(f"cannot read input {name}: {exc}") from exc
-        text = io.TextIOWrapper(buffered, encoding="utf-8-sig", errors="replace", newline="")
+        text = io.TextIOWrapper(buffered, encoding=encoding, errors="replace", newline="")
         # Closing the wrapper closes only our layers: _Prefixed never closes its source.
         self._closers.insert(0, text.close)
         return text
@@ -580,8 +644,14 @@ class RecordReader(Iterator[InputRecord]):
     def _detect(self, fmt: str | None) -> str:
         chosen = _normalise_format(fmt) if fmt is not None else _format_from_name(self.name)
         first = self._first_significant()
+        url_name = str((self._names or {}).get("url", "url")).strip().lower()
         if not chosen:
-            chosen = _sniff(first) if first is not None else "txt"
+            chosen, delimiter = _sniff(first, url_name) if first is not None else ("txt", None)
+            self._delimiter = self._delimiter or delimiter
+        elif chosen == "csv" and self._delimiter is None and first is not None:
+            sniffed, delimiter = _sniff(first, url_name)  # a ';' or '|' header in a .csv
+            if sniffed == "csv" and delimiter:
+                self._delimiter = delimiter
         return chosen
 
     def _first_significant(self) -> str | None:
@@ -605,18 +675,26 @@ class RecordReader(Iterator[InputRecord]):
             return _SKIP
 
     def _read_header(self) -> None:
-        delimiter = _DELIMITERS[self.format]
+        delimiter = self._delimiter or _DELIMITERS[self.format]
         self._feed = _CsvFeed(self._src)
         self._reader = csv.reader(self._feed, delimiter=delimiter)
         header = self._guarded(self._next_row)
         if header is None:  # an empty file: no records, nothing wrong
             return
-        columns = _Columns(header)
+        columns = _Columns(header, self._names)
         if "url" not in columns.index:
             found = ", ".join(repr(h.strip()) for h in header[:20]) or "nothing"
+            wanted = (self._names or {}).get("url", "url")
+            hint = "name the URL column 'url', or say which it is (--url-column)"
+            joined = "".join(header)
+            for other in (";", "|", "\t", ","):
+                if other != delimiter and other in joined:
+                    hint = (f"the header holds {other!r}: if that separates the columns, "
+                            f"give the delimiter (--delimiter {other!r})")
+                    break
             raise InputFormatError(
-                f"{self.name}: the {self.format.upper()} header has no 'url' column"
-                f" (found {found}); name the URL column 'url'"
+                f"{self.name}: the {self.format.upper()} header has no {wanted!r} column"
+                f" (found {found}); {hint}"
             )
         self._columns = columns
 
@@ -661,7 +739,8 @@ class RecordReader(Iterator[InputRecord]):
             if not text or text.startswith("#"):
                 continue
             no = src.line_no
-            result = _from_json(no, text) if json_lines else _make_record(no, text)
+            result = _from_json(no, text, self._names) if json_lines \
+                else _make_record(no, text)
             if isinstance(result, str):
                 stats.add_bad(src.line_no, text, result)
             else:
@@ -754,7 +833,19 @@ class RecordReader(Iterator[InputRecord]):
 _SKIP: Any = object()
 
 
-def _from_json(line_no: int, text: str) -> InputRecord | str:
+def _source_names(names: Mapping[str, str] | None) -> dict[str, str]:
+    """``{"url": "host"}`` (known field -> the file's name for it) as file name -> field,
+    lower-cased; a known name that is mapped away no longer means itself."""
+    if not names:
+        return {}
+    out = {str(v).strip().lower(): k for k, v in names.items()}
+    for k in names:
+        out.setdefault(k, f"\x00{k}")  # e.g. a 'url' column when --url-column says 'host'
+    return out
+
+
+def _from_json(line_no: int, text: str,
+               names: Mapping[str, str] | None = None) -> InputRecord | str:
     """One JSON Lines line: an object with a ``url``, or a bare JSON string."""
     try:
         value = json.loads(text)
@@ -766,22 +857,27 @@ def _from_json(line_no: int, text: str) -> InputRecord | str:
         return _make_record(line_no, value)
     if not isinstance(value, dict):
         return f"a JSON line must be an object or a string, not {type(value).__name__}"
-    if "url" not in value:
-        return "JSON object has no 'url'"
-    extra = {
-        str(k): v if isinstance(v, str) else json.dumps(v, ensure_ascii=False)
-        for k, v in value.items()
-        if k not in _KNOWN_COLUMNS
-    }
-    return _make_record(
-        line_no, value["url"], value.get("label"), value.get("count"), value.get("seen_at"), extra
-    )
+    source = _source_names(names)
+    fields: dict[str, Any] = {}
+    extra: dict[str, str] = {}
+    for k, v in value.items():
+        field = source.get(str(k).lower(), str(k)) if source else str(k)
+        if field in _KNOWN_COLUMNS and field not in fields:
+            fields[field] = v
+        else:
+            extra[str(k)] = v if isinstance(v, str) else json.dumps(v, ensure_ascii=False)
+    if "url" not in fields:
+        return f"JSON object has no {(names or {}).get('url', 'url')!r}"
+    return _make_record(line_no, fields["url"], fields.get("label"), fields.get("count"),
+                        fields.get("seen_at"), extra)
 
 
 def read_records(
     path_or_file: InputSource,
     fmt: str | None = None,
     stats: ReadStats | None = None,
+    columns: Mapping[str, str] | None = None,
+    delimiter: str | None = None,
 ) -> RecordReader:
     """Stream the records of a URL list; bad lines are counted in ``stats`` and skipped.
 
@@ -789,8 +885,14 @@ def read_records(
     iterable of lines. Gzip is detected by its magic bytes. ``fmt`` ("txt", "csv", "tsv",
     "jsonl") overrides detection by suffix and by the first line. Raises ``InputFormatError``
     when the file cannot be opened or read, or a CSV/TSV header has no ``url`` column.
+    ``columns`` names the file's own columns (or JSON keys) for the known fields, e.g.
+    ``{"url": "host", "label": "category"}``; ``delimiter`` overrides the CSV/TSV one
+    (a delimiter given with no format means CSV).
     """
-    return RecordReader(path_or_file, fmt=fmt, stats=stats)
+    if delimiter is not None and fmt is None:
+        fmt = "tsv" if delimiter == "\t" else "csv"
+    return RecordReader(path_or_file, fmt=fmt, stats=stats, columns=columns,
+                        delimiter=delimiter)
 
 
 # --------------------------------------------------------------------------- writers
@@ -1014,12 +1116,39 @@ class RecordWriter:
             with contextlib.suppress(OSError):
                 os.unlink(self._tmp)
 
+    def keep_partial(self) -> str | None:
+        """Stop writing, keeping what was written: on a path, the rows so far are moved to
+        ``<name>.partial`` (never to the final name, which would look complete) and that
+        name is returned; None when nothing was written or the target is a stream."""
+        if self._closed:
+            return None
+        if self._final is None or self._tmp is None or not self.count:
+            self.abort()
+            return None
+        self._closed = True
+        try:
+            self._flush_layers()
+            self._sink.close()
+            partial = f"{self._final}.partial"
+            os.replace(self._tmp, partial)
+        except BaseException:
+            self._discard()
+            raise
+        return partial
+
     def __enter__(self) -> RecordWriter:
         return self
 
-    def __exit__(self, exc_type: type[BaseException] | None, *rest: object) -> None:
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 *rest: object) -> None:
         if exc_type is None:
             self.close()
+        elif isinstance(exc, KeyboardInterrupt):  # Ctrl-C, or SIGTERM in the CLI
+            partial = self.keep_partial()
+            if partial is not None:  # the CLI names it and says how to go on
+                kept = list(getattr(exc, "partial_outputs", []))
+                kept.append((partial, self.count))
+                exc.partial_outputs = kept  # type: ignore[attr-defined]
         else:
             self.abort()
 

@@ -31,6 +31,7 @@ import numpy as np
 
 from cascade import __version__
 from cascade import metrics as M
+from cascade.evaluate import risk_breakdown
 
 __all__ = [
     "DEFAULT_BUDGETS",
@@ -158,8 +159,17 @@ def build_report(
     seeds: int = 5,
     title: str = "cascade budget report",
     context: dict[str, Any] | None = None,
+    fetch_costs: Any = None,
+    domains: Sequence[str] | None = None,
+    concurrency: int = 64,
+    risk: dict[str, str] | None = None,
 ) -> dict[str, Any]:
-    """Every number of the report as a JSON-ready dict (``write_report`` draws it)."""
+    """Every number of the report as a JSON-ready dict (``write_report`` draws it).
+
+    ``fetch_costs`` (a ``FetchCosts``, e.g. learned from earlier fetch results) and the
+    rows' ``domains`` turn each budget row into operational units: bytes, fetch-seconds,
+    wall-clock seconds at ``concurrency`` fetches in flight, and expected failures; without
+    them those use ``FetchCosts``'s defaults and the report says so."""
     y, pu, pf, w, c = _arrays(y, url_proba, fused_proba, counts, costs)
     n, k = pu.shape
     if len(classes) != k:
@@ -192,13 +202,48 @@ def build_report(
 
     curves = curves_at(fine)
     at_budgets = curves_at(budgets)
+    from cascade.budget import FetchCosts
+
+    costs_given = fetch_costs is not None
+    fetch_costs = fetch_costs if costs_given else FetchCosts()
+    per_row = np.array([fetch_costs.estimate(d) for d in (domains or [""] * n)],
+                       dtype=np.float64).reshape(n, 3)
+    plan_order = strategy_orders(y, pu, pf, gain, w, c)["planner"]
+    correct_u = (pu.argmax(axis=1) == y).astype(np.float64)
+    correct_f = (pf.argmax(axis=1) == y).astype(np.float64)
+    rng = np.random.default_rng(0)
+    boot = rng.integers(0, n, (200, n))  # 95% percentile bootstrap, the same draws per row
     table = []
     for j, b in enumerate(budgets):
-        row: dict[str, Any] = {"budget": b, "fetches": _fetched(b, n)}
+        m = _fetched(b, n)
+        row: dict[str, Any] = {"budget": b, "fetches": m}
         for name in STRATEGIES:
-            row[name] = {m: round(at_budgets[name][m][j], 4)
-                         for m in ("accuracy", "cost_weighted_error")}
+            row[name] = {m_: round(at_budgets[name][m_][j], 4)
+                         for m_ in ("accuracy", "cost_weighted_error")}
+        chosen = plan_order[:m]
+        # the planner's accuracy with its spread: rows resampled (Efron and Tibshirani,
+        # An Introduction to the Bootstrap, 1993, ch. 13), lookup weights kept
+        right = correct_u.copy()
+        right[chosen] = correct_f[chosen]
+        draws = (right[boot] * w[boot]).sum(axis=1) / w[boot].sum(axis=1)
+        row["planner"]["accuracy_95"] = [round(float(np.percentile(draws, 2.5)), 4),
+                                         round(float(np.percentile(draws, 97.5)), 4)]
+        fail, nbytes, secs = per_row[chosen].sum(axis=0) if m else (0.0, 0.0, 0.0)
+        row["operations"] = {
+            "fetches": m, "bytes": round(float(nbytes)),
+            "fetch_seconds": round(float(secs), 1),
+            "wall_seconds": round(float(secs) / max(1, concurrency), 1),
+            "expected_failures": round(float(fail), 1),
+            "failure_rate": round(float(fail) / m, 4) if m else None}
         table.append(row)
+    planner_curve = np.asarray(curves["planner"]["accuracy"])
+    # the knee: the budget farthest above the straight line from fetching nothing to
+    # fetching everything (the "kneedle" rule of Satopaa et al., 2011)
+    chord = planner_curve[0] + (planner_curve[-1] - planner_curve[0]) * fine
+    knee = float(fine[int(np.argmax(planner_curve - chord))])
+    conf = pu.max(axis=1)
+    m_op_rows = _fetched(operating_budget, n)
+    suggested = float(np.sort(conf)[m_op_rows]) if 0 < m_op_rows < n else None
     all_fetch = curves["planner"]["accuracy"][-1]
     gain_all = all_fetch - curves["planner"]["accuracy"][0]
     shares = {name: {f"{int(q * 100)}%": budget_for_share(fine, curves[name]["accuracy"], q,
@@ -207,7 +252,8 @@ def build_report(
     orders = strategy_orders(y, pu, pf, gain, w, c)
     m_op = _fetched(operating_budget, n)
     at_op = _mixed(pu, pf, orders["planner"], m_op)
-    views = {"url only": pu, f"planner at {operating_budget:.0%}": at_op, "fetch all": pf}
+    # stable keys (no spaces, independent of the budget); ``VIEW_LABELS`` names them
+    views = {"url_only": pu, "planner_at_operating_budget": at_op, "fetch_all": pf}
     coverage = {}
     for name, p in views.items():
         cov, thr = M.coverage_at_precision(y, p, precision_target, sample_weight=w)
@@ -220,17 +266,28 @@ def build_report(
         risk[name] = {"coverage": np.round(cov[::step], 4).tolist() + [1.0],
                       "risk": np.round(r[::step], 4).tolist() + [round(float(r[-1]), 4)]}
     tpr = {name: M.tpr_at_fpr(y, p, ROC_FPR, sample_weight=w)
-           for name, p in (("url only", pu), ("cascade", at_op))}
+           for name, p in (("url_only", pu), ("cascade", at_op))}
     auc = M.roc_auc_one_vs_rest(y, at_op, sample_weight=w)
     per_class = []
+    f1_url = M.f1_per_class(y, pu.argmax(axis=1), k, w)
+    f1_cas = M.f1_per_class(y, at_op.argmax(axis=1), k, w)
     for j, cls in enumerate(classes):
+        negatives = int((y != j).sum())
+        measurable = negatives >= round(1 / ROC_FPR)  # common practice, no source
+        change = None if (math.isnan(f1_url[j]) or math.isnan(f1_cas[j])) else \
+            round(float(f1_cas[j] - f1_url[j]), 4)
         per_class.append({
             "category": cls, "rows": int((y == j).sum()), "cost": float(c[j]),
-            f"tpr_at_fpr_{ROC_FPR:g}_url": _num(tpr["url only"][j]),
-            f"tpr_at_fpr_{ROC_FPR:g}_cascade": _num(tpr["cascade"][j]),
+            "risk": (risk or {}).get(cls, "low"),
+            f"tpr_at_fpr_{ROC_FPR:g}_url": _num(tpr["url_only"][j]) if measurable else None,
+            f"tpr_at_fpr_{ROC_FPR:g}_cascade": _num(tpr["cascade"][j]) if measurable
+            else None,
+            "tpr_measurable": measurable, "negatives": negatives,
+            "f1_url": _num(f1_url[j]), "f1_cascade": _num(f1_cas[j]), "f1_change": change,
+            "worse_after_fetching": change is not None and change < -0.02,
             "auc_cascade": _num(auc[j])})
     reliability = {name: M.reliability_table(y, p, 15, sample_weight=w).to_rows()
-                   for name, p in (("url only", pu), ("cascade", at_op))}
+                   for name, p in (("url_only", pu), ("cascade", at_op))}
     ece = {name: round(M.expected_calibration_error(y, p, 15, sample_weight=w), 4)
            for name, p in views.items()}
     return {
@@ -239,13 +296,25 @@ def build_report(
         "rows": int(n), "classes": list(classes), "weighted_by_lookups": counts is not None,
         "lookups": float(w.sum()), "context": context or {},
         "operating_budget": operating_budget, "precision_target": precision_target,
+        "knee_budget": knee, "suggested_fetch_below": None if suggested is None
+        else round(suggested, 4),
+        "fetch_costs": {"from_history": costs_given, "concurrency": concurrency,
+                        "note": "bytes, seconds and failures from earlier fetch results" if
+                        costs_given else "no fetch history given: every fetch is assumed "
+                        f"to cost {fetch_costs.default_bytes:,.0f} bytes and "
+                        f"{fetch_costs.default_seconds:g} s and to succeed "
+                        "(pass --fetch-history for measured figures)"},
+        "unit_costs": bool(np.all(c == c[0])),
+        "by_risk": None if risk is None else {
+            name: risk_breakdown(y, p.argmax(axis=1), list(classes), risk)
+            for name, p in (("url_only", pu), ("cascade", at_op))},
         "random_seeds": seeds, "budget_table": table,
         "budget_for_gain_share": shares,
         "gain_of_fetching_all": {"accuracy": round(gain_all, 4)},
         "coverage_at_precision": coverage, "ece_15": ece, "per_class": per_class,
         "curves": {"budget": fine.tolist(), **curves},
         "risk_coverage": risk, "reliability": reliability,
-        "roc": _roc_points(y, {"url only": pu, "cascade": at_op}, classes, w),
+        "roc": _roc_points(y, {"url_only": pu, "cascade": at_op}, classes, w),
     }
 
 
@@ -280,8 +349,19 @@ def _roc_points(y: np.ndarray, views: dict[str, np.ndarray], classes: Sequence[s
 # ------------------------------------------------------------------------ drawing
 
 _COLOURS = {"planner": "#1b6b5a", "lowest-confidence": "#c2711b", "random": "#7a7a7a",
-            "oracle": "#3b4cc0", "url only": "#c2711b", "cascade": "#1b6b5a",
-            "fetch all": "#3b4cc0"}
+            "oracle": "#3b4cc0", "url_only": "#c2711b", "cascade": "#1b6b5a",
+            "planner_at_operating_budget": "#1b6b5a", "fetch_all": "#3b4cc0"}
+
+#: What the report shows for each stable key of ``report.json``.
+VIEW_LABELS = {"url_only": "URL model only", "planner_at_operating_budget":
+               "planner at the operating budget", "fetch_all": "fetch all",
+               "cascade": "cascade (planner at the operating budget)"}
+
+
+def _label(rep: dict[str, Any], name: str) -> str:
+    if name == "planner_at_operating_budget":
+        return f"planner at {rep['operating_budget']:.0%}"
+    return VIEW_LABELS.get(name, name)
 
 
 #: The report's plot style, applied only while its own figures are built and saved.
@@ -310,8 +390,10 @@ def _draw(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
         figs.append((fid, caption, base64.b64encode(buf.getvalue()).decode("ascii")))
 
     x = np.array(rep["curves"]["budget"]) * 100
-    for metric, label, fid in (("accuracy", "accuracy", "budget-accuracy"),
-                               ("cost_weighted_error", "cost-weighted error", "budget-error")):
+    metrics = [("accuracy", "accuracy", "budget-accuracy")]
+    if not rep.get("unit_costs", False):  # with unit costs it is 1 - accuracy again
+        metrics.append(("cost_weighted_error", "cost-weighted error", "budget-error"))
+    for metric, label, fid in metrics:
         fig = Figure(figsize=(6.2, 3.6))
         ax = fig.subplots()
         for name in STRATEGIES:
@@ -322,6 +404,10 @@ def _draw(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
             if name == "random" and metric == "accuracy":
                 ax.fill_between(x, cur["accuracy_min"], cur["accuracy_max"],
                                 color=_COLOURS[name], alpha=0.15, lw=0)
+        for at, what, style in ((rep["operating_budget"], "operating budget", "-"),
+                                (rep.get("knee_budget"), "knee", ":")):
+            if at is not None:
+                ax.axvline(at * 100, color="#444", lw=0.9, ls=style, label=what)
         ax.set_xlabel("fetch budget (% of URLs fetched)")
         ax.set_ylabel(label)
         ax.grid(alpha=0.3)
@@ -330,7 +416,7 @@ def _draw(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
     fig = Figure(figsize=(6.2, 3.6))
     ax = fig.subplots()
     for name, cur in rep["risk_coverage"].items():
-        ax.plot(cur["coverage"], cur["risk"], label=name,
+        ax.plot(cur["coverage"], cur["risk"], label=_label(rep, name),
                 color=_COLOURS.get(name.split(" at ")[0], "#1b6b5a"))
     ax.set_xlabel("coverage (share of lookups answered)")
     ax.set_ylabel("risk (error among answered)")
@@ -345,11 +431,11 @@ def _draw(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
     for ax in axes.flat[len(classes):]:
         ax.axis("off")
     for ax, cls in zip(axes.flat, classes, strict=False):
-        for name in ("url only", "cascade"):
+        for name in ("url_only", "cascade"):
             pts = rep["roc"][name].get(cls)
             if pts:
                 ax.plot(np.maximum(pts["fpr"], 1e-5), pts["tpr"], color=_COLOURS[name],
-                        lw=1.2, label=name)
+                        lw=1.2, label=_label(rep, name))
         ax.axvline(ROC_FPR, color="#b22222", lw=0.8, ls=":")
         ax.set_xscale("log")
         ax.set_xlim(1e-5, 1)
@@ -369,7 +455,7 @@ def _draw(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
         pts = [(r["mean_confidence"], r["accuracy"]) for r in rows_ if r["accuracy"] is not None]
         if pts:
             xs, ys = zip(*pts, strict=True)
-            ax.plot(xs, ys, marker="o", ms=3, label=name, color=_COLOURS[name])
+            ax.plot(xs, ys, marker="o", ms=3, label=_label(rep, name), color=_COLOURS[name])
     ax.set_xlabel("mean confidence in bin")
     ax.set_ylabel("accuracy in bin")
     ax.set_xlim(0, 1)
@@ -393,6 +479,7 @@ figure{margin:1rem 0;background:#fff;padding:.5rem;border:1px solid #e4e1da;text
 figcaption{font-size:.85rem;color:#555}
 img{max-width:100%}
 .note{font-size:.85rem;color:#555;border-left:3px solid #c2711b;padding-left:.6rem}
+tr.worse td{background:#fbe9e7}
 """
 
 
@@ -409,18 +496,42 @@ def _html(rep: dict[str, Any], figs: list[tuple[str, str, str]]) -> str:
     if rep["context"]:
         parts.append("<table>" + "".join(f"<tr><td>{e(str(a))}</td><td>{e(str(b))}</td></tr>"
                                          for a, b in rep["context"].items()) + "</table>")
+    cost_col = not rep.get("unit_costs", False)  # with unit costs it repeats 1 - accuracy
     parts.append("<h2>What each fetch budget buys</h2><table><tr><th>budget</th>"
                  + "".join(f"<th>{e(s)}</th>" for s in STRATEGIES)
-                 + "<th>planner cost-weighted error</th></tr>")
+                 + ("<th>planner cost-weighted error</th>" if cost_col else "")
+                 + "<th>fetches</th><th>MB</th><th>fetch-seconds</th>"
+                 + f"<th>wall-clock s at {rep['fetch_costs']['concurrency']} in flight</th>"
+                 + "<th>expected failures</th></tr>")
+    near_op = min(rep["budget_table"], key=lambda r: abs(r["budget"] - rep["operating_budget"]))
+    near_knee = min(rep["budget_table"], key=lambda r: abs(r["budget"] - rep["knee_budget"]))
     for row in rep["budget_table"]:
         best = max(row[s]["accuracy"] for s in STRATEGIES if s != "oracle")
+        lo, hi = row["planner"].get("accuracy_95", (None, None))
+        spread = "" if lo is None else f" <small>[{lo:.3f}, {hi:.3f}]</small>"
         cells = "".join(
             f"<td class=\"{'best' if s != 'oracle' and row[s]['accuracy'] == best else ''}\">"
-            f"{row[s]['accuracy']:.4f}</td>" for s in STRATEGIES)
-        parts.append(f"<tr><td>{row['budget']:.0%}</td>{cells}"
-                     f"<td>{row['planner']['cost_weighted_error']:.4f}</td></tr>")
-    parts.append("</table><p>Accuracy when that share of the URLs is fetched; the rest keep "
-                 "the URL model's verdict. The oracle fetches only URLs a fetch fixes.</p>")
+            f"{row[s]['accuracy']:.4f}{spread if s == 'planner' else ''}</td>"
+            for s in STRATEGIES)
+        ops = row["operations"]
+        marks = [m for m, r in (("operating budget", near_op), ("knee", near_knee))
+                 if r is row]
+        label = f"{row['budget']:.0%}" + (f" <b>({', '.join(marks)})</b>" if marks else "")
+        parts.append(f"<tr><td>{label}</td>{cells}"
+                     + (f"<td>{row['planner']['cost_weighted_error']:.4f}</td>"
+                        if cost_col else "")
+                     + f"<td>{ops['fetches']:,}</td><td>{ops['bytes'] / 1e6:,.1f}</td>"
+                       f"<td>{ops['fetch_seconds']:,.0f}</td><td>{ops['wall_seconds']:,.0f}"
+                       f"</td><td>{ops['expected_failures']:,.0f}</td></tr>")
+    suggestion = rep.get("suggested_fetch_below")
+    parts.append("</table><p>Accuracy when that share of the URLs is fetched (planner: with "
+                 "its 95% bootstrap interval); the rest keep the URL model's verdict. The "
+                 "oracle fetches only URLs a fetch fixes. "
+                 f"{e(rep['fetch_costs']['note'])}. The knee (the budget farthest above the "
+                 f"straight line from nothing to everything) is at {rep['knee_budget']:.0%}."
+                 + ("" if suggestion is None else
+                    f" To fetch about {rep['operating_budget']:.0%} of URLs by confidence "
+                    f"alone, use <code>--fetch-below {suggestion:.3f}</code>.") + "</p>")
     parts.append("<h2>Budget needed for a share of the gain of fetching everything</h2>"
                  "<table><tr><th>strategy</th><th>90% of gain</th><th>95% of gain</th></tr>")
     for s in STRATEGIES:
@@ -430,25 +541,55 @@ def _html(rep: dict[str, Any], figs: list[tuple[str, str, str]]) -> str:
             + "</tr>")
     parts.append(f"</table><p>Fetching everything gains "
                  f"{rep['gain_of_fetching_all']['accuracy']:+.4f} accuracy.</p>")
+    unit = "lookups" if rep["weighted_by_lookups"] else "URLs"
     parts.append(f"<h2>Coverage at precision {rep['precision_target']:.0%}</h2><table><tr>"
-                 "<th>verdicts</th><th>coverage of lookups</th><th>confidence threshold</th>"
+                 f"<th>verdicts</th><th>coverage of {unit}</th><th>confidence threshold</th>"
                  "<th>ECE (15 bins)</th></tr>")
     for name, v in rep["coverage_at_precision"].items():
         thr = "-" if v["threshold"] is None else f"{v['threshold']:.4f}"
-        parts.append(f"<tr><td>{e(name)}</td><td>{v['coverage']:.4f}</td><td>{thr}</td>"
+        parts.append(f"<tr><td>{e(_label(rep, name))}</td><td>{v['coverage']:.4f}</td>"
+                     f"<td>{thr}</td>"
                      f"<td>{rep['ece_15'][name]:.4f}</td></tr>")
     parts.append("</table>")
     tkey = f"tpr_at_fpr_{ROC_FPR:g}"
-    parts.append(f"<h2>Per category</h2><table><tr><th>category</th><th>rows</th><th>cost</th>"
-                 f"<th>TPR at FPR {ROC_FPR:g}, URL</th><th>same, cascade</th><th>AUC, cascade</th>"
-                 "</tr>")
+    parts.append(f"<h2>Per category</h2><table><tr><th>category</th><th>risk</th><th>rows</th>"
+                 f"<th>cost</th><th>F1, URL</th><th>F1, cascade</th><th>change</th>"
+                 f"<th>TPR at FPR {ROC_FPR:g}, URL</th><th>same, cascade</th>"
+                 "<th>AUC, cascade</th></tr>")
     for r in rep["per_class"]:
         def f(v: float | None) -> str:
             return "-" if v is None else f"{v:.3f}"
-        parts.append(f"<tr><td>{e(r['category'])}</td><td>{r['rows']}</td><td>{r['cost']:g}</td>"
-                     f"<td>{f(r[tkey + '_url'])}</td><td>{f(r[tkey + '_cascade'])}</td>"
-                     f"<td>{f(r['auc_cascade'])}</td></tr>")
-    parts.append("</table>")
+        if r.get("tpr_measurable", True):
+            tprs = f"<td>{f(r[tkey + '_url'])}</td><td>{f(r[tkey + '_cascade'])}</td>"
+        else:
+            tprs = (f"<td colspan=\"2\">not measurable: {r['negatives']} negatives "
+                    f"(needs {round(1 / ROC_FPR):,})</td>")
+        change = r.get("f1_change")
+        flag = " class=\"worse\"" if r.get("worse_after_fetching") else ""
+        parts.append(f"<tr{flag}><td>{e(r['category'])}</td><td>{e(r.get('risk', ''))}</td>"
+                     f"<td>{r['rows']}</td><td>{r['cost']:g}</td>"
+                     f"<td>{f(r.get('f1_url'))}</td><td>{f(r.get('f1_cascade'))}</td>"
+                     f"<td>{'-' if change is None else format(change, '+.3f')}"
+                     f"{' (worse)' if r.get('worse_after_fetching') else ''}</td>"
+                     f"{tprs}<td>{f(r['auc_cascade'])}</td></tr>")
+    parts.append("</table><p>Fetching raises the average and can still hurt one category: "
+                 "rows marked worse lose more than 0.02 F1 from the URL model alone to the "
+                 "cascade at the operating budget.</p>")
+    if rep.get("by_risk"):
+        parts.append("<h2>High-risk categories</h2><table><tr><th>verdicts</th>"
+                     "<th>under-blocking (high-risk rows put in a low-risk category)</th>"
+                     "<th>over-blocking (low-risk rows put in a high-risk category)</th></tr>")
+        for name, b in rep["by_risk"].items():
+            u, o = b["under_blocking"], b["over_blocking"]
+            us = "-" if u["share_of_high_risk_rows"] is None else \
+                f"{u['rows']} ({u['share_of_high_risk_rows']:.1%})"
+            os_ = "-" if o["share_of_low_risk_rows"] is None else \
+                f"{o['rows']} ({o['share_of_low_risk_rows']:.1%})"
+            parts.append(f"<tr><td>{e(_label(rep, name))}</td><td>{us}</td><td>{os_}</td>"
+                         "</tr>")
+        cats = ", ".join(next(iter(rep["by_risk"].values()))["high_risk_categories"]) or "none"
+        parts.append(f"</table><p>High-risk categories (the taxonomy's <code>risk</code>): "
+                     f"{e(cats)}.</p>")
     parts.append("<h2>Plots</h2>")
     for fid, caption, data in figs:
         parts.append(f"<figure id=\"{fid}\"><img alt=\"{e(caption)}\" "

@@ -4,19 +4,96 @@ bundle when rows have saved pages."""
 
 from __future__ import annotations
 
+import dataclasses
+from collections import Counter
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import Any, Literal
 
 from sklearn.base import clone
 
 from cascade.bundle import ModelBundle, fit_bundle
+from cascade.errors import TaxonomyError
 from cascade.evaluate import evaluate_proba, evaluation_split
 from cascade.models.page_model import PageModel
 from cascade.models.url_model import UrlModel
 from cascade.taxonomy import Taxonomy
 from cascade.urls import UrlKey
 
-__all__ = ["train"]
+__all__ = ["LabelCheck", "check_labels", "train"]
+
+
+@dataclasses.dataclass(frozen=True)
+class LabelCheck:
+    """What ``check_labels`` found and did: the labels to train on, the taxonomy, and one
+    warning line per finding (printed by ``cascade train``)."""
+
+    labels: list[str]
+    taxonomy: Taxonomy
+    warnings: tuple[str, ...]
+    folded: dict[str, str]
+    absent: tuple[str, ...]
+
+
+def check_labels(labels: Sequence[str], taxonomy: Taxonomy | None = None, *,
+                 fold_case: bool = False,
+                 absent: Literal["keep", "drop"] = "keep") -> LabelCheck:
+    """Find the two silent label mistakes before a fit, and apply the user's choice.
+
+    - Labels that differ only in case ("Media sharing" / "Media Sharing") would become two
+      categories: warned by name; ``fold_case`` merges each group into the taxonomy's
+      spelling (without a taxonomy, the most common spelling).
+    - Taxonomy categories with no training row would be kept and never predicted (their
+      probability is ~0): warned by name; ``absent="drop"`` leaves them out of the model's
+      category set, ``"keep"`` keeps them (a later model trained with rows can learn them).
+    """
+    if absent not in ("keep", "drop"):
+        raise ValueError(f"absent must be 'keep' or 'drop', not {absent!r}")
+    labels = [str(v) for v in labels]
+    counts = Counter(labels)
+    canon: dict[str, str] = {}
+    if taxonomy is not None:
+        for name in taxonomy.names:
+            canon.setdefault(name.casefold(), name)
+    groups: dict[str, list[str]] = {}
+    for lab in counts:
+        groups.setdefault(lab.casefold(), []).append(lab)
+    warnings: list[str] = []
+    folded: dict[str, str] = {}
+    for key, spellings in sorted(groups.items()):
+        target = canon.get(key) or max(spellings, key=lambda v: (counts[v], v))
+        variants = sorted(set(spellings) | ({target} if key in canon else set()))
+        odd = [v for v in spellings if v != target]
+        if len(variants) < 2 or not odd:
+            continue
+        shown = ", ".join(f"{v!r} ({counts.get(v, 0)} rows)" for v in variants)
+        if fold_case:
+            folded.update({v: target for v in odd})
+            warnings.append(f"labels that differ only in case were merged into {target!r}: "
+                            f"{shown}")
+        else:
+            warnings.append(f"labels that differ only in case would be separate categories: "
+                            f"{shown}; --fold-case merges them into {target!r}")
+    if folded:
+        labels = [folded.get(v, v) for v in labels]
+        counts = Counter(labels)
+    if taxonomy is None:
+        taxonomy = Taxonomy.from_labels(labels)
+    taxonomy.check_labels(labels)
+    missing = tuple(n for n in taxonomy.names if counts.get(n, 0) == 0)
+    if missing:
+        shown = ", ".join(repr(m) for m in missing)
+        if absent == "drop":
+            kept = tuple(c for c in taxonomy.categories if c.name not in missing)
+            if len(kept) < 2:
+                raise TaxonomyError("fewer than two categories have training rows")
+            taxonomy = dataclasses.replace(taxonomy, categories=kept)
+            warnings.append(f"{len(missing)} categories have no training rows and were left "
+                            f"out of the model: {shown}")
+        else:
+            warnings.append(f"{len(missing)} categories have no training rows; the model keeps "
+                            f"them but will never predict them: {shown} (--absent-categories "
+                            "drop leaves them out)")
+    return LabelCheck(labels, taxonomy, tuple(warnings), folded, missing)
 
 
 def train(
@@ -41,6 +118,11 @@ def train(
     returned bundle is then fitted on every row (stacked with pages when any row has one).
     """
     say = progress or (lambda _msg: None)
+    if taxonomy is None:
+        # one category set for the held-out measurement and the final fit: a label seen
+        # only on the held-out side is then a category the measured model never predicts
+        # (its errors count), not a reason to abort
+        taxonomy = Taxonomy.from_labels(labels)
     template = clone(url_model if url_model is not None else UrlModel()).set_params(seed=seed)
     metrics: dict[str, Any] = {}
     if holdout > 0:

@@ -54,7 +54,7 @@ def test_score_urls_on_the_command_line_as_csv(workdir: Path, capsys) -> None:
                  "--output-format", "csv", "lnk.test/Ab3dE", "https://m.blue-album.example/"])
     assert code == EXIT_OK
     lines = capsys.readouterr().out.strip().splitlines()
-    assert lines[0].startswith("url,category,confidence")
+    assert lines[0].startswith("line,input,url,category,confidence")
     assert len(lines) == 3
 
 
@@ -118,3 +118,18 @@ def test_plan_with_a_url_only_model_ranks_by_confidence(workdir: Path, capsys) -
     # chance of a wrong verdict x category cost x lookups, best first
     assert len(rows) == 2 and rows[0]["expected_gain"] >= rows[1]["expected_gain"] > 0
     assert "no fetch-value model" in captured.err
+
+
+def test_train_defaults_are_the_url_models_own() -> None:
+    # `cascade train` with no options must fit the same model as `UrlModel()`
+    import inspect
+
+    from cascade.cli import URL_MODEL_DEFAULTS
+    from cascade.models.url_model import UrlModel
+
+    sig = {k: v.default for k, v in inspect.signature(UrlModel).parameters.items()}
+    d = URL_MODEL_DEFAULTS
+    assert (d["ngram_min"], d["ngram_max"]) == sig["ngram_range"]
+    assert 2 ** d["hash_bits"] == sig["n_features"]
+    for name in ("C", "tol", "max_iter", "class_balance"):
+        assert d[name] == sig[name], name

@@ -47,6 +47,6 @@ def test_demo_runs_the_whole_cascade(tmp_path) -> None:
 
 def test_demo_with_too_few_sites_for_a_held_out_split_is_a_usage_error(
         tmp_path, capsys) -> None:
-    code = main(["--quiet", "demo", "--out", str(tmp_path / "demo"), "--sites", "8"])
+    code = main(["--quiet", "demo", "--out", str(tmp_path / "demo"), "--sites", "1"])
     assert code == EXIT_USAGE
     assert "--sites" in capsys.readouterr().err

@@ -426,8 +426,23 @@ def test_summarize_is_json_ready_and_consistent() -> None:
     assert s["ece_15"] == pytest.approx(M.expected_calibration_error(y, proba))
     aucs = M.roc_auc_one_vs_rest(y, proba)
     assert s["mean_roc_auc"] == pytest.approx(np.nanmean(aucs))
-    assert s["per_class"]["e"] == {"roc_auc": None, "tpr_at_fpr_1e-3": None,
-                                   "tpr_at_fpr_1e-2": None, "support": 0, "f1": None}
+    e = s["per_class"]["e"]
+    assert {k: e[k] for k in ("roc_auc", "tpr_at_fpr_1e-2", "support", "f1", "precision",
+                              "recall")} == {"roc_auc": None, "tpr_at_fpr_1e-2": None,
+                                             "support": 0, "f1": None, "precision": None,
+                                             "recall": None}
+    # 300 rows cannot measure a false-positive rate of 1e-3: said, not a number
+    assert e["tpr_at_fpr_1e-3"] is None and "1000 negatives" in e["not_measurable"][0]
+    # reference: sklearn.metrics.precision_recall_fscore_support and confusion_matrix
+    from sklearn.metrics import confusion_matrix, precision_recall_fscore_support
+
+    prec, rec, _, _ = precision_recall_fscore_support(y, pred, labels=[0, 1, 2, 3],
+                                                      zero_division=0)
+    assert s["per_class"]["b"]["precision"] == pytest.approx(prec[1])
+    assert s["per_class"]["b"]["recall"] == pytest.approx(rec[1])
+    assert s["confusion"]["matrix"] == confusion_matrix(y, pred, labels=range(5)).tolist()
+    lo, hi = s["intervals_95"]["accuracy"]
+    assert lo <= s["accuracy"] <= hi
     assert s["per_class"]["b"]["support"] == int((y == 1).sum())
     assert s["per_class"]["b"]["tpr_at_fpr_1e-2"] == pytest.approx(
         M.tpr_at_fpr(y, proba, 1e-2)[1])

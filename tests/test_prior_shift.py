@@ -249,12 +249,13 @@ def test_a_small_night_keeps_its_probabilities_and_says_why(bundle, scenario,
 
 
 # ---------------------------------------------------------------- the command line
-def test_report_and_night_commands_take_prior_shift(cli_model_dir: Path,
+def test_report_and_night_commands_take_prior_shift(cli_model_dir: Path, cli_pages_dir: Path,
                                                     tmp_path: Path) -> None:
+    pages = cli_pages_dir  # the report needs a page model and saved pages
+    code = main(["--quiet", "report", "-m", str(pages / "model"), "-i",
+                 str(pages / "train.csv"), "--pages", str(pages / "saved"), "--out",
+                 str(tmp_path / "rep"), "--seeds", "1", "--prior-shift"])
     root = cli_model_dir
-    code = main(["--quiet", "report", "-m", str(root / "model"), "-i",
-                 str(root / "labelled.csv"), "--out", str(tmp_path / "rep"), "--seeds", "1",
-                 "--prior-shift"])
     assert code == EXIT_OK
     rep = json.loads((tmp_path / "rep" / "report.json").read_text())
     assert rep["prior_shift"]["applied"] and "true_mix" in rep["prior_shift"]

@@ -12,6 +12,7 @@ from sklearn.metrics import accuracy_score, roc_curve
 
 from cascade.report import (
     STRATEGIES,
+    _html,
     budget_curve,
     budget_for_share,
     build_report,
@@ -24,6 +25,14 @@ from tests.test_budget import _synthetic
 @pytest.fixture(scope="module")
 def data():
     y, pu, pf = _synthetic(800, k=4, seed=7)
+    gain = 1.0 - pu.max(axis=1) + np.random.default_rng(0).normal(0, 0.05, len(y))
+    return y, pu, pf, gain
+
+
+@pytest.fixture(scope="module")
+def big():
+    """Enough rows that every class has the 1,000 negatives a TPR at FPR 1e-3 needs."""
+    y, pu, pf = _synthetic(2500, k=4, seed=7)
     gain = 1.0 - pu.max(axis=1) + np.random.default_rng(0).normal(0, 0.05, len(y))
     return y, pu, pf, gain
 
@@ -78,11 +87,11 @@ def test_budget_for_share() -> None:
     assert budget_for_share(f, [0.5, 0.5, 0.5, 0.5, 0.5], 0.9) is None
 
 
-def test_report_roc_points_are_sklearn_roc_curve(data) -> None:
-    y, pu, pf, gain = data
+def test_report_roc_points_are_sklearn_roc_curve(big) -> None:
+    y, pu, pf, gain = big
     rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], seeds=2)
     fpr, tpr, _ = roc_curve(y == 2, pu[:, 2], drop_intermediate=True)  # reference: sklearn
-    pts = rep["roc"]["url only"]["c"]
+    pts = rep["roc"]["url_only"]["c"]
     assert pts["fpr"][-1] == pytest.approx(fpr[-1]) and pts["tpr"][-1] == pytest.approx(tpr[-1])
     # TPR at FPR 1e-3 from the ROC points: best TPR with FPR <= 1e-3.
     full_fpr, full_tpr, _ = roc_curve(y == 2, pu[:, 2], drop_intermediate=False)
@@ -101,10 +110,12 @@ def test_report_json_and_self_contained_html(data, tmp_path) -> None:
     assert back["weighted_by_lookups"] is True
     page = paths["html"].read_text()
     imgs = re.findall(r'<img [^>]*src="data:image/png;base64,', page)
-    assert len(imgs) == 5  # budget accuracy, budget error, risk-coverage, ROC, reliability
+    # budget accuracy, risk-coverage, ROC, reliability; no cost-weighted error plot with
+    # unit costs (it would repeat 1 - accuracy)
+    assert len(imgs) == 4 and back["unit_costs"] is True
     # Self-contained: nothing loaded from elsewhere.
     assert not re.search(r'(src|href)="(https?:)?//', page)
-    for fid in ("budget-accuracy", "budget-error", "risk-coverage", "roc", "reliability"):
+    for fid in ("budget-accuracy", "risk-coverage", "roc", "reliability"):
         assert paths[fid].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert "policy owner" in page
 
@@ -154,8 +165,8 @@ def test_budget_shares_round_down_like_the_planner(data) -> None:
         assert got == pytest.approx(accuracy_score(y, mixed))  # reference: sklearn.metrics
 
 
-def test_weighted_roc_points_carry_the_table_tpr(data) -> None:
-    y, pu, pf, gain = data
+def test_weighted_roc_points_carry_the_table_tpr(big) -> None:
+    y, pu, pf, gain = big
     counts = np.random.default_rng(5).integers(1, 1000, len(y)).astype(float)
     rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], counts=counts, seeds=2)
     # reference: sklearn.metrics.roc_curve with sample_weight
@@ -190,3 +201,38 @@ def test_writing_a_report_leaves_matplotlib_global_state_alone(data, tmp_path) -
             assert [key for key in before if after[key] != before[key]] == []
     finally:
         matplotlib.use(original, force=True)
+
+
+def test_tpr_at_a_tiny_fpr_is_not_printed_where_the_negatives_cannot_measure_it(data) -> None:
+    y, pu, pf, gain = data  # 800 rows: about 600 negatives per class, under 1,000
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], seeds=1,
+                       costs=[1.0, 2.0, 1.0, 5.0])
+    for row in rep["per_class"]:
+        assert row["tpr_at_fpr_0.001_url"] is None and not row["tpr_measurable"]
+    assert rep["unit_costs"] is False
+    html_page = _html(rep, [])
+    assert "not measurable" in html_page and "cost-weighted" in html_page
+
+
+def test_budget_rows_come_in_operational_units_with_the_knee_marked(data) -> None:
+    from cascade.budget import FetchCosts
+
+    y, pu, pf, gain = data
+    costs = FetchCosts.from_history([{"domain": "a.example", "ok": False, "bytes": 1000.0,
+                                      "ms": 2000.0}] * 20)
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], seeds=1, fetch_costs=costs,
+                       domains=["a.example"] * len(y), concurrency=4)
+    row = next(r for r in rep["budget_table"] if r["budget"] == 0.5)
+    ops = row["operations"]
+    assert ops["fetches"] == 400
+    # 20 failed fetches of 1,000 bytes and 2 s, shrunk toward the defaults by 5 pseudo-fetches
+    fail, nbytes, secs = costs.estimate("a.example")
+    assert ops["bytes"] == round(400 * nbytes) and ops["wall_seconds"] == round(
+        400 * secs / 4, 1)
+    assert ops["expected_failures"] == pytest.approx(400 * fail, abs=0.1)
+    lo, hi = row["planner"]["accuracy_95"]
+    assert lo <= row["planner"]["accuracy"] <= hi
+    assert 0 < rep["knee_budget"] < 1 and rep["fetch_costs"]["from_history"]
+    assert 0 < rep["suggested_fetch_below"] < 1
+    assert set(rep["coverage_at_precision"]) == {"url_only", "planner_at_operating_budget",
+                                                  "fetch_all"}

@@ -201,3 +201,45 @@ def test_reading_a_foreign_csv_fails_with_a_clear_error(tmp_path: Path) -> None:
     path.write_text("url,label\nhttps://a.example/,news\n", encoding="utf-8")
     with pytest.raises(InputFormatError, match="header"):
         read_telemetry_csv(path)
+
+
+def _real_host_labels() -> list[list[str]]:
+    # open datasets in shared/data (see their SOURCE.md): real host and domain names
+    root = Path(__file__).resolve().parents[2] / "shared" / "data"
+    labels = []
+    for path in (root / "open-directory-hosts" / "hosts.csv",
+                 root / "domain-categories" / "domains.csv"):
+        if not path.exists():
+            pytest.skip(f"{path} is not here (shared data sets)")
+        with path.open(encoding="utf-8") as fh:
+            rows = csv.reader(fh)
+            next(rows)
+            labels += [row[0].lower().split("//")[-1].split("/")[0].split(".") for row in rows
+                       if row]
+    return labels
+
+
+def test_invented_names_start_with_the_scenarios_own_onsets() -> None:
+    import random
+
+    from cascade.scenario.telemetry import SIGNATURE_ONSETS, _invented_word
+
+    r = random.Random(0)
+    words = [_invented_word(r) for _ in range(2000)]
+    assert all(w.startswith(SIGNATURE_ONSETS) for w in words)
+    # and those onsets almost never start a label of a real host name
+    real = _real_host_labels()
+    for onset in SIGNATURE_ONSETS:
+        starting = sum(any(label.startswith(onset) for label in host) for host in real)
+        assert starting <= 6, (onset, starting, len(real))
+
+
+def test_no_invented_brand_is_a_real_host_label(records: list[TelemetryRecord]) -> None:
+    real = {label for host in _real_host_labels() for label in host if len(label) >= 4}
+    brands = set()
+    for rec in records:
+        if rec.signal != "opaque":
+            continue
+        name = next(rec.site[: -len(s)] for s in RESERVED if rec.site.endswith(s))
+        brands.add(name.rsplit(".", 1)[-1])
+    assert brands and not (brands & real), sorted(brands & real)[:10]

@@ -59,7 +59,8 @@ class SystemResolver:
 
 
 class StaticResolver:
-    """Fixed answers: ``{"host": ["addr", ...]}``; other names go to ``fallback`` (or fail).
+    """Fixed answers: ``{"host": ["addr", ...]}``, or ``{"*.farm.test": [...]}`` for every
+    name below ``farm.test``; other names go to ``fallback`` (or fail).
 
     A value may also be a sequence of answer lists, handed out in turn per lookup (the last
     repeats): tests use it to play a resolver that changes its answer.
@@ -71,9 +72,22 @@ class StaticResolver:
         self.fallback = fallback
         self.lookups: dict[str, int] = {}
 
-    async def resolve(self, host: str, port: int) -> list[str]:
+    def _key(self, host: str) -> str | None:
+        """The answer's key: the name itself, else the nearest ``*.parent`` wildcard (a
+        wildcard covers every name below its parent, at any depth, not the parent)."""
         key = host.lower().rstrip(".")
-        if key not in self.answers:
+        if key in self.answers:
+            return key
+        parts = key.split(".")
+        for i in range(1, len(parts)):
+            wild = "*." + ".".join(parts[i:])
+            if wild in self.answers:
+                return wild
+        return None
+
+    async def resolve(self, host: str, port: int) -> list[str]:
+        key = self._key(host)
+        if key is None:
             if self.fallback is None:
                 raise ResolutionError(f"{host}: not in the fixed answers")
             return await self.fallback.resolve(host, port)
@@ -87,7 +101,8 @@ class StaticResolver:
 
 
 def parse_resolve_overrides(items: Iterable[str]) -> dict[str, list[str]]:
-    """``["host:1.2.3.4", "host:[::1]"]`` to ``{"host": ["1.2.3.4", "::1"]}``."""
+    """``["host:1.2.3.4", "host:[::1]", "*.farm.test:127.0.0.1"]`` to
+    ``{"host": ["1.2.3.4", "::1"], "*.farm.test": ["127.0.0.1"]}``."""
     out: dict[str, list[str]] = {}
     for item in items:
         host, sep, address = item.partition(":")
@@ -95,5 +110,8 @@ def parse_resolve_overrides(items: Iterable[str]) -> dict[str, list[str]]:
             raise ValueError(f"--resolve takes HOST:ADDRESS, not {item!r}")
         address = address.strip("[]")
         ipaddress.ip_address(address)  # raises ValueError for a non-address
+        if "*" in host and not (host.startswith("*.") and host[2:] and "*" not in host[2:]):
+            raise ValueError(f"--resolve: a wildcard is '*.' before a name, as in "
+                             f"*.farm.test, not {host!r}")
         out.setdefault(host.lower(), []).append(address)
     return out
