@@ -499,10 +499,15 @@ def cmd_refine(args: argparse.Namespace) -> int:
     policy, resolver = _fetch_setup(args)
     stats = ReadStats()
     keyed = list(_keyed(args, stats))
+    done = _done_urls(args.resume) if args.resume else set()
 
     records: dict[str, list[InputRecord]] = {}
     for rec, k in keyed:
-        records.setdefault(k.url, []).append(rec)
+        if k.url not in done:
+            records.setdefault(k.url, []).append(rec)
+    if done and not args.quiet:
+        _eprint(f"refine: {len(done)} URLs already refined in {args.resume} are skipped; "
+                f"{len(records)} left")
     failed = 0
 
     async def run(out: Any) -> dict[str, int]:
@@ -529,6 +534,19 @@ def cmd_refine(args: argparse.Namespace) -> int:
     code = _finish({"refined": sum(counts.values()), "by_reason": counts,
                     "fetch_failed": failed, "model_version": bundle.version}, stats, args.quiet)
     return _all_failed(args, sum(counts.values()), failed) or code
+
+
+def _done_urls(path: str) -> set[str]:
+    """The normalized URLs of an earlier (partial) ``refine`` output, to skip them."""
+    from cascade.urls import normalize
+
+    done: set[str] = set()
+    for rec in read_records(path, fmt="jsonl", stats=ReadStats()):
+        try:
+            done.add(normalize(rec.url).url)
+        except InvalidURL:
+            continue
+    return done
 
 
 def _budget(args: argparse.Namespace) -> Any:
@@ -988,6 +1006,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="output file, JSON Lines ('-': stdout; .gz ok; default -)")
     p.add_argument("--top", type=_whole(1), default=3,
                    help="best categories kept per URL (default 3)")
+    p.add_argument("--resume", metavar="PARTIAL",
+                   help="skip the URLs already in this earlier output (e.g. the "
+                        "out.jsonl.partial an interrupted run kept); append the new output "
+                        "to it afterwards")
     _add_fetch_options(p)
     p.set_defaults(func=cmd_refine)
 
@@ -1287,11 +1309,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         how = "stopped by SIGTERM" if code == EXIT_TERMINATED else "interrupted"
         _eprint(f"cascade {args.command}: {how} (exit {code})")
         for path, rows in getattr(exc, "partial_outputs", []):
+            how_on = (f"run the same command with --resume {path} (and a new --output) to "
+                      "refine only the rest" if args.command == "refine" else
+                      "run the command again for the whole output")
             _eprint(f"cascade {args.command}: the {rows} rows written so far are kept in "
-                    f"{path} (each with its input line number, 'line'); run the command "
-                    "again for the whole output" + (
-                        "; 'cascade night' resumes where it stopped" if args.command ==
-                        "night" else ""))
+                    f"{path} (each with its input line number, 'line'); {how_on}")
         return code
     except BrokenPipeError:
         return EXIT_OK

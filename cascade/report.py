@@ -452,16 +452,22 @@ def _draw(rep: dict[str, Any]) -> list[tuple[str, str, str]]:
     ax = fig.subplots()
     ax.plot([0, 1], [0, 1], color="#999999", lw=0.8, ls=":")
     for name, rows_ in rep["reliability"].items():
-        pts = [(r["mean_confidence"], r["accuracy"]) for r in rows_ if r["accuracy"] is not None]
+        pts = [(r["mean_confidence"], r["accuracy"], r["count"]) for r in rows_
+               if r["accuracy"] is not None]
         if pts:
-            xs, ys = zip(*pts, strict=True)
+            xs, ys, ns = zip(*pts, strict=True)
             ax.plot(xs, ys, marker="o", ms=3, label=_label(rep, name), color=_COLOURS[name])
+            if name == "cascade":  # how many rows stand behind each point
+                for x_, y_, n_ in zip(xs, ys, ns, strict=True):
+                    ax.annotate(str(n_), (x_, y_), textcoords="offset points",
+                                xytext=(0, 5), ha="center", fontsize=6, color="#444")
     ax.set_xlabel("mean confidence in bin")
     ax.set_ylabel("accuracy in bin")
     ax.set_xlim(0, 1)
     ax.set_ylim(0, 1)
     ax.legend(frameon=False, fontsize=8)
-    keep(fig, "reliability", "Reliability: accuracy against confidence, 15 equal bins.")
+    keep(fig, "reliability", "Reliability: accuracy against confidence, 15 equal bins "
+                              "(numbers: rows in each bin of the cascade's verdicts).")
     return figs
 
 

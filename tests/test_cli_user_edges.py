@@ -364,3 +364,29 @@ def test_score_on_a_terminal_prints_a_table(model: Path) -> None:
     lines = text.strip().splitlines()
     assert lines[0].split()[:2] == ["line", "URL"] and URL in lines[1]
     assert not text.lstrip().startswith("{")
+
+
+def test_refine_resume_skips_the_urls_already_refined(cli_pages_dir: Path, tmp_path: Path,
+                                                      capsys) -> None:
+    # no packet leaves the machine: both names are answered locally with a loopback
+    # address, which the address guard refuses (RFC 6890), so each fetch fails at once
+    partial = tmp_path / "out.jsonl.partial"
+    partial.write_text(json.dumps({"url": "http://a.example/"}) + "\n")
+    out = tmp_path / "rest.jsonl"
+    code = main(["refine", "-m", str(cli_pages_dir / "model"), "--operator",
+                 "mailto:ops@example.org", "--resolve", "*.example:127.0.0.1",
+                 "--deadline", "2", "--resume", str(partial),
+                 "-o", str(out), "http://a.example/", "http://b.example/"])
+    assert code in (EXIT_OK, EXIT_NO_FETCH)
+    rows = [json.loads(line) for line in out.read_text().splitlines()]
+    assert [r["url"] for r in rows] == ["http://b.example/"]
+    assert "1 URLs already refined" in capsys.readouterr().err
+
+
+def test_a_report_from_a_url_only_model_is_refused(cli_model_dir: Path, tmp_path: Path,
+                                                   capsys) -> None:
+    code = main(["report", "-m", str(cli_model_dir / "model"), "-i",
+                 str(cli_model_dir / "labelled.csv"), "-o", str(tmp_path / "r")])
+    assert code == EXIT_FILE
+    assert "URL-only model" in capsys.readouterr().err
+    assert not (tmp_path / "r" / "report.json").exists()
