@@ -35,7 +35,9 @@ needs_chromium = pytest.mark.skipif(shot.find_chromium() is None,
 def test_report_renders_every_plot_with_no_errors(tmp_path) -> None:
     y, pu, pf = _synthetic(400, k=4, seed=3)
     gain = 1.0 - pu.max(axis=1)
-    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], seeds=2)
+    # categories of different costs: the cost-weighted error plot is drawn too
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], seeds=2,
+                       costs=[1.0, 2.0, 1.0, 4.0])
     html_path = write_report(rep, tmp_path / "r")["html"]
     png = tmp_path / "report.png"
     result = shot.check_report(html_path, png, timeout=45)
