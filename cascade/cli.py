@@ -694,7 +694,10 @@ def cmd_night(args: argparse.Namespace) -> int:
                "outputs": {k: str(v) for k, v in result.paths.items()}}
     stats = ReadStats(lines=rep["input"]["lines"], records=rep["input"]["records"],
                       bad=rep["input"]["bad"])
-    return _finish(summary, stats, args.quiet)
+    code = _finish(summary, stats, args.quiet)
+    outcomes = rep["fetch_outcomes"]
+    tried = sum(outcomes.values())
+    return _all_failed(args, tried, tried - outcomes.get("ok", 0)) or code
 
 
 def cmd_store(args: argparse.Namespace) -> int:

@@ -170,6 +170,7 @@ def build_report(
     rows' ``domains`` turn each budget row into operational units: bytes, fetch-seconds,
     wall-clock seconds at ``concurrency`` fetches in flight, and expected failures; without
     them those use ``FetchCosts``'s defaults and the report says so."""
+    risk_levels = dict(risk) if risk is not None else None  # ``risk`` is reused below
     y, pu, pf, w, c = _arrays(y, url_proba, fused_proba, counts, costs)
     n, k = pu.shape
     if len(classes) != k:
@@ -278,7 +279,7 @@ def build_report(
             round(float(f1_cas[j] - f1_url[j]), 4)
         per_class.append({
             "category": cls, "rows": int((y == j).sum()), "cost": float(c[j]),
-            "risk": (risk or {}).get(cls, "low"),
+            "risk": (risk_levels or {}).get(cls, "low"),
             f"tpr_at_fpr_{ROC_FPR:g}_url": _num(tpr["url_only"][j]) if measurable else None,
             f"tpr_at_fpr_{ROC_FPR:g}_cascade": _num(tpr["cascade"][j]) if measurable
             else None,
@@ -299,14 +300,15 @@ def build_report(
         "knee_budget": knee, "suggested_fetch_below": None if suggested is None
         else round(suggested, 4),
         "fetch_costs": {"from_history": costs_given, "concurrency": concurrency,
-                        "note": "bytes, seconds and failures from earlier fetch results" if
-                        costs_given else "no fetch history given: every fetch is assumed "
+                        "note": "Bytes, seconds and failures are measured per domain, from "
+                        "earlier fetch results" if costs_given else "No fetch history given: "
+                        "every fetch is assumed "
                         f"to cost {fetch_costs.default_bytes:,.0f} bytes and "
                         f"{fetch_costs.default_seconds:g} s and to succeed "
                         "(pass --fetch-history for measured figures)"},
         "unit_costs": bool(np.all(c == c[0])),
-        "by_risk": None if risk is None else {
-            name: risk_breakdown(y, p.argmax(axis=1), list(classes), risk)
+        "by_risk": None if risk_levels is None else {
+            name: risk_breakdown(y, p.argmax(axis=1), list(classes), risk_levels)
             for name, p in (("url_only", pu), ("cascade", at_op))},
         "random_seeds": seeds, "budget_table": table,
         "budget_for_gain_share": shares,
@@ -527,7 +529,7 @@ def _html(rep: dict[str, Any], figs: list[tuple[str, str, str]]) -> str:
                      + (f"<td>{row['planner']['cost_weighted_error']:.4f}</td>"
                         if cost_col else "")
                      + f"<td>{ops['fetches']:,}</td><td>{ops['bytes'] / 1e6:,.1f}</td>"
-                       f"<td>{ops['fetch_seconds']:,.0f}</td><td>{ops['wall_seconds']:,.0f}"
+                       f"<td>{ops['fetch_seconds']:,.0f}</td><td>{ops['wall_seconds']:,.1f}"
                        f"</td><td>{ops['expected_failures']:,.0f}</td></tr>")
     suggestion = rep.get("suggested_fetch_below")
     parts.append("</table><p>Accuracy when that share of the URLs is fetched (planner: with "
@@ -581,7 +583,7 @@ def _html(rep: dict[str, Any], figs: list[tuple[str, str, str]]) -> str:
     parts.append("</table><p>Fetching raises the average and can still hurt one category: "
                  "rows marked worse lose more than 0.02 F1 from the URL model alone to the "
                  "cascade at the operating budget.</p>")
-    if rep.get("by_risk"):
+    if rep.get("by_risk") and next(iter(rep["by_risk"].values()))["high_risk_categories"]:
         parts.append("<h2>High-risk categories</h2><table><tr><th>verdicts</th>"
                      "<th>under-blocking (high-risk rows put in a low-risk category)</th>"
                      "<th>over-blocking (low-risk rows put in a high-risk category)</th></tr>")

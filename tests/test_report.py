@@ -236,3 +236,12 @@ def test_budget_rows_come_in_operational_units_with_the_knee_marked(data) -> Non
     assert 0 < rep["suggested_fetch_below"] < 1
     assert set(rep["coverage_at_precision"]) == {"url_only", "planner_at_operating_budget",
                                                   "fetch_all"}
+
+
+def test_risk_levels_reach_the_per_category_rows_and_the_breakdown(data) -> None:
+    y, pu, pf, gain = data
+    risk = {"a": "high", "b": "low", "c": "low", "d": "high"}
+    rep = build_report(y, pu, pf, gain, ["a", "b", "c", "d"], seeds=1, risk=risk)
+    assert [r["risk"] for r in rep["per_class"]] == ["high", "low", "low", "high"]
+    assert rep["by_risk"]["cascade"]["high_risk_categories"] == ["a", "d"]
+    assert "under-blocking" in _html(rep, [])
