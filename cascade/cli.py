@@ -262,19 +262,32 @@ def cmd_score(args: argparse.Namespace) -> int:
     written = 0
     if args.output == "-" and args.output_format is None and _stdout_is_terminal():
         return _score_table(args, bundle, stats)
+    header: list[str] | None = None  # CSV: the columns, from the first chunk's rows
+    dropped: dict[str, int] = {}
     with open_writer(args.output, fmt=args.output_format) as out:
         csv_out = out.format != "jsonl"
         for chunk in _chunks(_keyed(args, stats)):
             keys = [k for _, k in chunk]
             verdicts = bundle.verdicts(keys, fetch_below=args.fetch_below, top_k=args.top)
-            for (rec, _), verdict in zip(chunk, verdicts, strict=True):
-                row = _joined(rec, verdict.to_dict())
-                if csv_out:
+            rows = [_joined(rec, v.to_dict()) for (rec, _), v in zip(chunk, verdicts,
+                                                                      strict=True)]
+            if csv_out:
+                if header is None:  # JSON Lines input may give rows different fields
+                    header = list(dict.fromkeys(k for row in rows for k in row))
+                for i, row in enumerate(rows):
+                    for k in row.keys() - set(header):
+                        dropped[k] = dropped.get(k, 0) + 1
+                    row = {k: row.get(k) for k in header}
                     row["top"] = json.dumps(row["top"])
+                    rows[i] = row
+            for row in rows:
                 out.write(row)
                 written += 1
             progress.update(len(chunk))
     progress.close()
+    if dropped and not args.quiet:
+        _eprint(f"score: input fields first seen after the CSV header was written were left "
+                f"out: {dropped} (rows); --output-format jsonl keeps every field")
     return _finish({"scored": written, "model_version": bundle.version}, stats, args.quiet)
 
 
@@ -517,33 +530,56 @@ def cmd_refine(args: argparse.Namespace) -> int:
             async for result in fetcher.fetch_many(list(records)):
                 (verdict,) = bundle.verdicts([result.url], fetches=[result], top_k=args.top)
                 failed += not result.ok
-                first = records.get(result.url, [None])[0]
-                row = verdict.to_dict() if first is None else _joined(first,
-                                                                      verdict.to_dict())
-                row["fetch"] = {"outcome": str(result.outcome), "status": result.status,
-                                "bytes_read": result.bytes_read,
-                                "elapsed_ms": round(result.elapsed_ms, 1),
-                                "detail": result.detail}
-                out.write(row)
+                fetch = {"outcome": str(result.outcome), "status": result.status,
+                         "bytes_read": result.bytes_read,
+                         "elapsed_ms": round(result.elapsed_ms, 1), "detail": result.detail}
+                # one fetch per distinct URL, one row per input line (joins back to the log)
+                for rec in records.get(result.url) or [None]:
+                    row = verdict.to_dict() if rec is None else _joined(rec, verdict.to_dict())
+                    row["fetch"] = fetch
+                    out.write(row)
                 counts[str(verdict.reason)] = counts.get(str(verdict.reason), 0) + 1
         return counts
 
     # the writer outside the event loop: an interrupt reaches it and keeps the fetched rows
     with open_writer(args.output) as out:
+        if args.resume:  # the earlier rows first: the output is then the whole result
+            for row in _json_rows(args.resume):
+                out.write(row)
         counts = asyncio.run(run(out))
     code = _finish({"refined": sum(counts.values()), "by_reason": counts,
                     "fetch_failed": failed, "model_version": bundle.version}, stats, args.quiet)
     return _all_failed(args, sum(counts.values()), failed) or code
 
 
+def _json_rows(path: str) -> Iterator[dict[str, Any]]:
+    """The rows of an earlier JSON Lines output (``.gz`` too), as written."""
+    import gzip
+
+    with open(path, "rb") as probe:
+        gz = probe.read(2) == b"\x1f\x8b"
+    with (gzip.open(path, "rt", encoding="utf-8") if gz else
+          open(path, encoding="utf-8")) as fh:
+        for line in fh:
+            if line.strip():
+                try:
+                    row = json.loads(line)
+                except ValueError:
+                    continue  # a last line cut short by the stop
+                if isinstance(row, dict) and isinstance(row.get("url"), str):
+                    yield row
+
+
 def _done_urls(path: str) -> set[str]:
     """The normalized URLs of an earlier (partial) ``refine`` output, to skip them."""
     from cascade.urls import normalize
 
+    if not Path(path).is_file():
+        raise InputFormatError(f"--resume {path}: no such file")
     done: set[str] = set()
-    for rec in read_records(path, fmt="jsonl", stats=ReadStats()):
+    for row in _json_rows(path):
         try:
-            done.add(normalize(rec.url).url)
+            done.add(normalize(row["url"]).url)
         except InvalidURL:
             continue
     return done
@@ -804,6 +840,19 @@ def _whole(minimum: int) -> Any:
     return parse
 
 
+def _unit_value(text: str) -> float:
+    """An argparse type for a threshold from 0 to 1 (``--fetch-below``, ``--precision-target``):
+    a number, or a percentage."""
+    raw = str(text).strip()
+    try:
+        value = float(raw[:-1]) / 100.0 if raw.endswith("%") else float(raw)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not 0.0 <= value <= 1.0:
+        raise argparse.ArgumentTypeError(f"must be between 0 and 1, not {text}")
+    return value
+
+
 def _share_value(text: str) -> float:
     """An argparse type: a share from 0 to 1, as ``0.3`` or ``30%`` (``budget.parse_share``)."""
     from cascade.budget import parse_share
@@ -959,7 +1008,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="default: from the output name, else jsonl")
     p.add_argument("--top", type=_whole(1), default=3,
                    help="best categories kept per URL (default 3)")
-    p.add_argument("--fetch-below", type=_share_value, default=0.8,
+    p.add_argument("--fetch-below", type=_unit_value, default=0.8,
                    help="mark needs_fetch when confidence is under this (default 0.8)")
     p.set_defaults(func=cmd_score)
 
@@ -984,7 +1033,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--pages", help="folder of saved pages named by the input's 'page' column: "
                                    "also evaluate the fused verdict, and flag categories "
                                    "that fusion makes worse")
-    p.add_argument("--precision-target", type=_share_value, default=PRECISION_TARGET,
+    p.add_argument("--precision-target", type=_unit_value, default=PRECISION_TARGET,
                    help="precision at which the recall figure is read, per category "
                         "(default %(default)s, as in 'report')")
     p.set_defaults(func=cmd_evaluate)
@@ -1011,8 +1060,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="best categories kept per URL (default 3)")
     p.add_argument("--resume", metavar="PARTIAL",
                    help="skip the URLs already in this earlier output (e.g. the "
-                        "out.jsonl.partial an interrupted run kept); append the new output "
-                        "to it afterwards")
+                        "out.jsonl.partial an interrupted run kept) and copy its rows into "
+                        "the new output first, so the new output is the whole result")
     _add_fetch_options(p)
     p.set_defaults(func=cmd_refine)
 
@@ -1047,7 +1096,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--operating-budget", type=_share_value, default=0.3,
                    help="share of URLs fetched for the 'after' figures: 30%% or 0.3 "
                         "(default 0.3)")
-    p.add_argument("--precision-target", type=_share_value, default=PRECISION_TARGET,
+    p.add_argument("--precision-target", type=_unit_value, default=PRECISION_TARGET,
                    help="precision at which the recall figure is read, per category "
                         "(default %(default)s, as in 'evaluate')")
     p.add_argument("--seeds", type=_whole(1), default=5,
@@ -1090,7 +1139,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="most fetches: a number (500) or a share of the URLs (10%%)")
     p.add_argument("--budget-bytes", help="also cap bytes (e.g. 500MB, 2GiB)")
     p.add_argument("--budget-seconds", help="also cap summed fetch time, in seconds")
-    p.add_argument("--fetch-below", type=_share_value, default=0.8,
+    p.add_argument("--fetch-below", type=_unit_value, default=0.8,
                    help="a URL verdict under this confidence wants a fetch (default 0.8)")
     p.add_argument("--review-size", type=_whole(0), default=500,
                    help="URLs in the analyst review queue (default 500)")
@@ -1119,7 +1168,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--port", type=int, default=8787, help="port (default 8787)")
     p.add_argument("--token-file", help="file whose first line is the bearer token "
                                         "(default: the CASCADE_SERVE_TOKEN variable)")
-    p.add_argument("--fetch-below", type=_share_value, default=0.8,
+    p.add_argument("--fetch-below", type=_unit_value, default=0.8,
                    help="a verdict under this confidence is queued for a fetch (default 0.8)")
     p.add_argument("--no-domain-fallback", action="store_true",
                    help="do not answer an unknown URL with its domain's stored verdict")
@@ -1165,6 +1214,10 @@ def _nearest_folder(path: Path) -> Path:
 
 def _check_file_target(text: str, option: str) -> None:
     path = Path(text)
+    if path.exists() and not path.is_file() and not path.is_dir():  # /dev/stdout, a FIFO
+        if not os.access(path, os.W_OK):
+            raise UsageError(f"{option} {text}: cannot write to it")
+        return
     if path.is_dir():
         raise UsageError(f"{option} {text}: is a folder; give a file name")
     folder = path.parent
@@ -1222,36 +1275,71 @@ def _subparsers(parser: argparse.ArgumentParser) -> dict[str, argparse.ArgumentP
     return dict(action.choices)
 
 
-def _apply_config(parser: argparse.ArgumentParser, settings: dict[str, Any]
-                  ) -> dict[str, list[str]]:
-    """Make the file's settings the defaults of every command that has the option (the
-    command line still wins); returns which commands each setting reached."""
-    reached: dict[str, list[str]] = {dest: [] for dest in settings}
-    for name, sub in _subparsers(parser).items():
-        values = {}
-        for action in sub._actions:
-            if action.dest not in settings or not action.option_strings:
-                continue
-            value = settings[action.dest]
-            convert = action.type or (lambda v: v)
-            try:
-                if isinstance(action, argparse._AppendAction):
-                    value = [convert(v) if isinstance(v, str) else v for v in value]
-                elif isinstance(action, argparse._StoreTrueAction):
-                    value = bool(value)
-                elif isinstance(value, str) or action.type is not None:
-                    value = convert(value if isinstance(value, str) else str(value))
-            except (argparse.ArgumentTypeError, ValueError) as exc:
-                raise UsageError(f"--config: {action.dest}: {exc}") from None
-            if action.choices is not None and value not in action.choices:
-                raise UsageError(f"--config: {action.dest} must be one of "
-                                 f"{list(action.choices)}, not {value!r}")
-            values[action.dest] = value
-            action.required = False  # the file gave it
-            reached[action.dest].append(name)
-        if values:
-            sub.set_defaults(**values)
-    return reached
+#: Commands a config file never reaches (the demo runs on its embedded defaults), and keys
+#: it never sets for a command (a config must not choose where ``train`` writes a model).
+_CONFIG_SKIPS_COMMANDS = {"demo", "config"}
+_CONFIG_SKIPS_KEYS = {"train": {"model", "output", "out"}}
+
+
+def _apply_config(parser: argparse.ArgumentParser, settings: dict[str, Any],
+                  command: str | None) -> tuple[dict[str, Any], set[str]]:
+    """Make the file's settings the defaults of ``command`` (the one being run), so the
+    command line still wins; list options (``--resolve``, ``--allow-network``, ``--port``)
+    are returned instead, to be used only when the command line gives none (argparse would
+    add the command line's to them). Values are checked only for that command. Also
+    returns the options the file set."""
+    later: dict[str, Any] = {}
+    subs = _subparsers(parser)
+    if command is None or command in _CONFIG_SKIPS_COMMANDS or command not in subs:
+        return later, set()
+    sub = subs[command]
+    values = {}
+    for action in sub._actions:
+        dest = action.dest
+        if dest not in settings or not action.option_strings or \
+                dest in _CONFIG_SKIPS_KEYS.get(command, ()):
+            continue
+        value = settings[dest]
+        is_list = isinstance(action, argparse._AppendAction)
+        if isinstance(value, list) != is_list:
+            continue  # e.g. [fetch] port (a list) is not serve's one --port
+        convert = action.type or (lambda v: v)
+        try:
+            if is_list:
+                value = [convert(v) if isinstance(v, str) else v for v in value]
+            elif isinstance(action, argparse._StoreTrueAction):
+                if not isinstance(value, bool):
+                    raise ValueError(f"true or false (a TOML boolean), not {value!r}")
+            elif isinstance(value, str) or action.type is not None:
+                value = convert(value if isinstance(value, str) else str(value))
+        except (argparse.ArgumentTypeError, ValueError) as exc:
+            raise UsageError(f"--config: {dest}: {exc}") from None
+        if action.choices is not None and value not in action.choices:
+            raise UsageError(f"--config: {dest} must be one of {list(action.choices)}, not "
+                             f"{value!r}")
+        action.required = False  # the file gave it
+        if is_list:
+            later[dest] = value
+        else:
+            values[dest] = value
+    if values:
+        sub.set_defaults(**values)
+    return later, set(values) | set(later)
+
+
+def _command_in(argv: Sequence[str]) -> str | None:
+    """The command word of an argument list (after the global options)."""
+    items = list(argv)
+    i = 0
+    while i < len(items):
+        token = items[i]
+        if token == "--config":
+            i += 2
+            continue
+        if not token.startswith("-"):
+            return token
+        i += 1
+    return None
 
 
 def cmd_config(args: argparse.Namespace) -> int:
@@ -1259,16 +1347,16 @@ def cmd_config(args: argparse.Namespace) -> int:
     (the command line, the config file, or the built-in default)."""
     parser = build_parser()
     settings = load_settings(args.config)
-    _apply_config(parser, settings)
+    later, applied = _apply_config(parser, settings, args.command_name)
     target = _subparsers(parser)[args.command_name]
     out: dict[str, Any] = {"config_file": _config_path(args.config), "command":
                            args.command_name, "options": {}}
     for action in target._actions:
         if not action.option_strings or action.dest in ("help", "quiet"):
             continue
-        source = "config file" if action.dest in settings else "default"
-        out["options"][action.option_strings[0]] = {"value": action.default,
-                                                    "from": source}
+        out["options"][action.option_strings[0]] = {
+            "value": later.get(action.dest, action.default),
+            "from": "config file" if action.dest in applied else "default"}
     print(json.dumps(out, indent=2, default=str))
     return EXIT_OK
 
@@ -1288,15 +1376,19 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run one command; returns its exit code (``EXIT_CODES``), never raises for the
     user's mistakes."""
     parser = build_parser()
+    argv = list(sys.argv[1:] if argv is None else argv)
     pre = argparse.ArgumentParser(add_help=False)
     pre.add_argument("--config")
     known, _ = pre.parse_known_args(argv)
     try:
-        _apply_config(parser, load_settings(known.config))
+        later, _ = _apply_config(parser, load_settings(known.config), _command_in(argv))
     except UsageError as exc:
         _eprint(f"cascade: error: {exc}")
         return EXIT_USAGE
     args = parser.parse_args(argv)
+    for dest, value in later.items():  # list options: the file's only if none were given
+        if getattr(args, dest, None) is None:
+            setattr(args, dest, value)
     if not hasattr(args, "quiet"):
         args.quiet = False
     previous = None
@@ -1312,8 +1404,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         how = "stopped by SIGTERM" if code == EXIT_TERMINATED else "interrupted"
         _eprint(f"cascade {args.command}: {how} (exit {code})")
         for path, rows in getattr(exc, "partial_outputs", []):
-            how_on = (f"run the same command with --resume {path} (and a new --output) to "
-                      "refine only the rest" if args.command == "refine" else
+            how_on = (f"run the same command with --resume {path} to refine only the rest "
+                      "(its rows are copied into the new output)" if args.command == "refine"
+                      else
                       "run the command again for the whole output")
             _eprint(f"cascade {args.command}: the {rows} rows written so far are kept in "
                     f"{path} (each with its input line number, 'line'); {how_on}")

@@ -315,6 +315,8 @@ def _make_record(
         return "url contains bytes that are not valid UTF-8"
     if label is not None and not isinstance(label, str):
         return f"label must be a string, not {type(label).__name__}"
+    if label is not None and "\ufffd" in label:  # else "Jeux vid\ufffdo" becomes a category
+        return "label contains bytes that are not valid UTF-8"
     parsed = _parse_count(count)
     if isinstance(parsed, str):
         return parsed
@@ -384,7 +386,8 @@ def _header_fields(line: str, delimiter: str) -> list[str]:
     return [f.strip().lower() for f in row]
 
 
-def _sniff(line: str, url_name: str = "url") -> tuple[str, str | None]:
+def _sniff(line: str, url_name: str = "url",
+           extra: str | None = None) -> tuple[str, str | None]:
     """Guess the format (and a CSV delimiter other than the format's own) from the first
     significant line of a file: a header naming the URL column makes it CSV/TSV."""
     text = line.strip()
@@ -392,11 +395,14 @@ def _sniff(line: str, url_name: str = "url") -> tuple[str, str | None]:
         return "jsonl", None
     if text.lower() in (url_name, f'"{url_name}"'):
         return "csv", None
-    for delimiter, fmt in (("\t", "tsv"), (",", "csv"), (";", "csv"), ("|", "csv")):
+    candidates = [("\t", "tsv"), (",", "csv"), (";", "csv"), ("|", "csv")]
+    if extra and extra not in "\t,;|":
+        candidates.insert(0, (extra, "csv"))
+    for delimiter, fmt in candidates:
         if delimiter in text:
             fields = _header_fields(text, delimiter)
             if url_name in fields and not any("://" in f for f in fields):
-                return fmt, (delimiter if delimiter in ";|" else None)
+                return fmt, (delimiter if delimiter not in "\t," else None)
     if text.startswith('"'):
         return "jsonl", None
     return "txt", None
@@ -491,6 +497,15 @@ class _Columns:
             used.add(unique)
             self.extra.append((i, unique))
 
+    def fall_back(self, header: list[str]) -> None:
+        """A field mapped to a column the file lacks uses its own name's column (so a
+        ``--url-column host`` setting still reads cascade's own ``url,label`` files)."""
+        for i, raw in enumerate(header):
+            key = raw.strip().lower()
+            if key in _KNOWN_COLUMNS and key not in self.index:
+                self.index[key] = i
+                self.extra = [(j, n) for j, n in self.extra if j != i]
+
     def get(self, row: list[str], key: str) -> str | None:
         i = self.index.get(key)
         return row[i] if i is not None and i < len(row) else None
@@ -510,35 +525,30 @@ def _read_head(stream: Any) -> bytes:
     return head
 
 
-def _binary_line(line: bytes) -> bool:
-    """A line no text file would hold: a NUL byte, or not UTF-8."""
-    if b"\x00" in line:
-        return True
-    try:
-        line.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        return exc.start < len(line) - 3  # a multi-byte character cut at the end is fine
-    return False
-
-
 def _text_encoding(head: bytes, name: str) -> str:
     """The encoding to read a byte stream with, from its first bytes: UTF-16 when it starts
-    with a byte-order mark, else UTF-8; a stream that is not text (NUL bytes, or mostly
-    invalid UTF-8 in most of its first lines) raises ``InputFormatError`` instead of being
-    read as lines of garbage; a text file with a few bad lines is read, those lines counted."""
+    with a byte-order mark, else UTF-8. A stream that is not text raises
+    ``InputFormatError`` instead of being read as lines of garbage: most of its first lines
+    hold NUL bytes (binary, or UTF-16 without its mark), or more than a tenth of it is not
+    UTF-8. A text file with a few bad bytes is read; a URL or label holding them is a bad
+    line, counted."""
     if head.startswith((b"\xff\xfe", b"\xfe\xff")):
         return "utf-16"  # the byte-order mark says which end first; the decoder drops it
-    lines = [line for line in (head.split(b"\n")[:-1] if len(head) == SNIFF_BYTES
-                               else head.split(b"\n")) if line.strip()]
-    bad = [line for line in lines if _binary_line(line)]
-    if lines and len(bad) > len(lines) / 2:
-        what = ("it holds NUL bytes" if any(b"\x00" in line for line in bad) else
-                "its lines are not UTF-8")
-        raise InputFormatError(
-            f"{name}: not a text file ({what}: {len(bad)} of its first {len(lines)} lines); "
-            "give URLs as UTF-8 text, one per line, or CSV / JSON Lines (a UTF-16 file "
-            "without a byte-order mark: convert it to UTF-8 first)")
-    return "utf-8-sig"
+    body = head[:-3] if len(head) == SNIFF_BYTES else head  # a cut multi-byte character
+    lines = [line for line in body.split(b"\n") if line.strip()]
+    with_nul = sum(b"\x00" in line for line in lines)
+    decoded = body.decode("utf-8", errors="replace")
+    invalid = decoded.count("\ufffd")
+    if lines and with_nul > len(lines) / 2:
+        what = f"NUL bytes in {with_nul} of its first {len(lines)} lines"
+    elif invalid > max(8, len(decoded) // 10):
+        what = f"{invalid} invalid UTF-8 sequences in its first {len(body)} bytes"
+    else:
+        return "utf-8-sig"
+    raise InputFormatError(
+        f"{name}: not a text file ({what}); give URLs as UTF-8 text, one per line, or CSV / "
+        "JSON Lines (a UTF-16 file without a byte-order mark, or another encoding: convert "
+        "it to UTF-8 first)")
 
 
 class RecordReader(Iterator[InputRecord]):
@@ -646,7 +656,10 @@ class RecordReader(Iterator[InputRecord]):
         first = self._first_significant()
         url_name = str((self._names or {}).get("url", "url")).strip().lower()
         if not chosen:
-            chosen, delimiter = _sniff(first, url_name) if first is not None else ("txt", None)
+            chosen, delimiter = ("txt", None)
+            for name in dict.fromkeys((url_name, "url")):  # the mapped name, else its own
+                if first is not None and chosen == "txt":
+                    chosen, delimiter = _sniff(first, name, self._delimiter)
             self._delimiter = self._delimiter or delimiter
         elif chosen == "csv" and self._delimiter is None and first is not None:
             sniffed, delimiter = _sniff(first, url_name)  # a ';' or '|' header in a .csv
@@ -682,6 +695,7 @@ class RecordReader(Iterator[InputRecord]):
         if header is None:  # an empty file: no records, nothing wrong
             return
         columns = _Columns(header, self._names)
+        columns.fall_back(header)
         if "url" not in columns.index:
             found = ", ".join(repr(h.strip()) for h in header[:20]) or "nothing"
             wanted = (self._names or {}).get("url", "url")
@@ -887,10 +901,8 @@ def read_records(
     when the file cannot be opened or read, or a CSV/TSV header has no ``url`` column.
     ``columns`` names the file's own columns (or JSON keys) for the known fields, e.g.
     ``{"url": "host", "label": "category"}``; ``delimiter`` overrides the CSV/TSV one
-    (a delimiter given with no format means CSV).
+    (it applies only to a CSV/TSV input: a ``.txt`` or ``.jsonl`` file is read as such).
     """
-    if delimiter is not None and fmt is None:
-        fmt = "tsv" if delimiter == "\t" else "csv"
     return RecordReader(path_or_file, fmt=fmt, stats=stats, columns=columns,
                         delimiter=delimiter)
 
@@ -1118,8 +1130,9 @@ class RecordWriter:
 
     def keep_partial(self) -> str | None:
         """Stop writing, keeping what was written: on a path, the rows so far are moved to
-        ``<name>.partial`` (never to the final name, which would look complete) and that
-        name is returned; None when nothing was written or the target is a stream."""
+        ``<name>.partial`` (never to the final name, which would look complete; if that
+        exists, from an earlier stop, ``<name>.partial-2`` and so on) and that name is
+        returned; None when nothing was written or the target is a stream."""
         if self._closed:
             return None
         if self._final is None or self._tmp is None or not self.count:
@@ -1130,6 +1143,9 @@ class RecordWriter:
             self._flush_layers()
             self._sink.close()
             partial = f"{self._final}.partial"
+            n = 2
+            while os.path.exists(partial):  # never replace the rows of an earlier stop
+                partial, n = f"{self._final}.partial-{n}", n + 1
             os.replace(self._tmp, partial)
         except BaseException:
             self._discard()

@@ -408,19 +408,34 @@ def _headline(
 def bootstrap_intervals(y: np.ndarray, p: np.ndarray, n_boot: int = 200,
                         seed: int = 0) -> dict[str, list[float | None]]:
     """95% percentile-bootstrap intervals (Efron and Tibshirani, *An Introduction to the
-    Bootstrap*, 1993, ch. 13) of accuracy, macro-F1 and ECE: rows resampled with
-    replacement ``n_boot`` times, seeded, so a figure comes with its spread."""
+    Bootstrap*, 1993, ch. 13) of accuracy, macro-F1 and ECE (15 bins): rows resampled with
+    replacement ``n_boot`` times, seeded. A resample is a count per row (how often it was
+    drawn), so each one costs a few weighted sums over the rows, not a copy of them."""
     rng = np.random.default_rng(seed)
     n, k = p.shape
     pred = p.argmax(axis=1)
-    draws = {"accuracy": [], "macro_f1": [], "ece_15": []}
+    conf = p[np.arange(n), pred]
+    right = (pred == y).astype(np.float64)
+    edges = _bin_edges(15)
+    bins = _bin_indices(conf, edges)
+    cell = y * k + pred
+    draws: dict[str, list[float]] = {"accuracy": [], "macro_f1": [], "ece_15": []}
     for _ in range(n_boot):
-        i = rng.integers(0, n, n)
-        draws["accuracy"].append(accuracy(y[i], pred[i]))
-        draws["macro_f1"].append(macro_f1(y[i], pred[i], k))
-        draws["ece_15"].append(expected_calibration_error(y[i], p[i], 15))
-    return {name: [_json_float(float(np.percentile(v, 2.5))),
-                   _json_float(float(np.percentile(v, 97.5)))] for name, v in draws.items()}
+        w = np.bincount(rng.integers(0, n, n), minlength=n).astype(np.float64)
+        total = w.sum()
+        draws["accuracy"].append(float(w @ right / total))
+        cm = np.bincount(cell, weights=w, minlength=k * k).reshape(k, k)
+        tp = np.diag(cm)
+        support, predicted = cm.sum(axis=1), cm.sum(axis=0)
+        present = (support > 0) | (predicted > 0)
+        f1 = np.divide(2 * tp, support + predicted, out=np.zeros(k), where=present)
+        draws["macro_f1"].append(float(f1[present].mean()) if present.any() else math.nan)
+        bw = np.bincount(bins, weights=w, minlength=15)
+        gap = np.abs(np.bincount(bins, weights=w * right, minlength=15)
+                     - np.bincount(bins, weights=w * conf, minlength=15))
+        draws["ece_15"].append(float(gap.sum() / total) if bw.sum() else math.nan)
+    return {name: [_json_float(float(np.nanpercentile(v, 2.5))),
+                   _json_float(float(np.nanpercentile(v, 97.5)))] for name, v in draws.items()}
 
 
 def summarize(

@@ -212,8 +212,9 @@ def build_report(
     plan_order = strategy_orders(y, pu, pf, gain, w, c)["planner"]
     correct_u = (pu.argmax(axis=1) == y).astype(np.float64)
     correct_f = (pf.argmax(axis=1) == y).astype(np.float64)
-    rng = np.random.default_rng(0)
-    boot = rng.integers(0, n, (200, n))  # 95% percentile bootstrap, the same draws per row
+    # 95% percentile bootstrap (Efron and Tibshirani, An Introduction to the Bootstrap,
+    # 1993, ch. 13): 200 resamples as counts per row, the same draws for every budget row
+    rights = []
     table = []
     for j, b in enumerate(budgets):
         m = _fetched(b, n)
@@ -226,9 +227,7 @@ def build_report(
         # An Introduction to the Bootstrap, 1993, ch. 13), lookup weights kept
         right = correct_u.copy()
         right[chosen] = correct_f[chosen]
-        draws = (right[boot] * w[boot]).sum(axis=1) / w[boot].sum(axis=1)
-        row["planner"]["accuracy_95"] = [round(float(np.percentile(draws, 2.5)), 4),
-                                         round(float(np.percentile(draws, 97.5)), 4)]
+        rights.append(right)
         fail, nbytes, secs = per_row[chosen].sum(axis=0) if m else (0.0, 0.0, 0.0)
         row["operations"] = {
             "fetches": m, "bytes": round(float(nbytes)),
@@ -237,6 +236,14 @@ def build_report(
             "expected_failures": round(float(fail), 1),
             "failure_rate": round(float(fail) / m, 4) if m else None}
         table.append(row)
+    rng = np.random.default_rng(0)
+    draws = np.empty((200, len(table)))
+    for r in range(200):  # one resample at a time: memory stays a few vectors of n
+        dw = np.bincount(rng.integers(0, n, n), minlength=n) * w
+        draws[r] = [(dw @ right) / dw.sum() for right in rights]
+    for j, row in enumerate(table):
+        row["planner"]["accuracy_95"] = [round(float(np.percentile(draws[:, j], 2.5)), 4),
+                                         round(float(np.percentile(draws[:, j], 97.5)), 4)]
     planner_curve = np.asarray(curves["planner"]["accuracy"])
     # the knee: the budget farthest above the straight line from fetching nothing to
     # fetching everything (the "kneedle" rule of Satopaa et al., 2011)
@@ -297,8 +304,8 @@ def build_report(
         "rows": int(n), "classes": list(classes), "weighted_by_lookups": counts is not None,
         "lookups": float(w.sum()), "context": context or {},
         "operating_budget": operating_budget, "precision_target": precision_target,
-        "knee_budget": knee, "suggested_fetch_below": None if suggested is None
-        else round(suggested, 4),
+        "knee_budget": knee, "suggested_fetch_below": suggested,  # unrounded: a rounded
+        # threshold can fetch a very different share where confidences crowd near 1
         "fetch_costs": {"from_history": costs_given, "concurrency": concurrency,
                         "note": "Bytes, seconds and failures are measured per domain, from "
                         "earlier fetch results" if costs_given else "No fetch history given: "
@@ -539,7 +546,7 @@ def _html(rep: dict[str, Any], figs: list[tuple[str, str, str]]) -> str:
                  f"straight line from nothing to everything) is at {rep['knee_budget']:.0%}."
                  + ("" if suggestion is None else
                     f" To fetch about {rep['operating_budget']:.0%} of URLs by confidence "
-                    f"alone, use <code>--fetch-below {suggestion:.3f}</code>.") + "</p>")
+                    f"alone, use <code>--fetch-below {suggestion!r}</code>.") + "</p>")
     parts.append("<h2>Budget needed for a share of the gain of fetching everything</h2>"
                  "<table><tr><th>strategy</th><th>90% of gain</th><th>95% of gain</th></tr>")
     for s in STRATEGIES:

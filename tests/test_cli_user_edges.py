@@ -276,9 +276,19 @@ def test_a_config_file_sets_options_and_the_command_line_wins(tmp_path: Path, ca
     from cascade.cli import _apply_config, load_settings
 
     parser = build_parser()
-    _apply_config(parser, load_settings(None))
+    _apply_config(parser, load_settings(None), "plan")
     args = parser.parse_args(["plan", "-m", "m", "--budget", "5", "http://a.example/"])
     assert args.budget == "5" and args.url_column == "host"
+    # a list option given on the command line replaces the file's list, never adds to it
+    # (the file's hole in the address guard must not survive a narrower command line)
+    captured = {}
+    monkeypatch.setattr("cascade.cli.cmd_fetch", lambda a: captured.update(vars(a)) or 0)
+    parser_args = ["fetch", "--allow-network", "127.0.0.2/32", "http://a.example/"]
+    assert main(parser_args) == EXIT_OK
+    assert captured["allow_network"] == ["127.0.0.2/32"]
+    assert main(["fetch", "http://a.example/"]) == EXIT_OK
+    assert captured["allow_network"] == ["127.0.0.1/32"]
+    assert captured["resolve"] == ["*.farm.test:127.0.0.1"]
 
 
 @pytest.mark.parametrize("text, message", [
@@ -286,6 +296,7 @@ def test_a_config_file_sets_options_and_the_command_line_wins(tmp_path: Path, ca
     ("[nonsense]\nx = 1\n", "unknown section"),
     ("[fetch\n", "not valid TOML"),
     ("[fetch]\nper_host_concurrency = 0\n", "at least"),
+    ('[fetch]\nignore_robots = "false"\n', "TOML boolean"),
 ])
 def test_a_bad_config_file_is_a_usage_error(tmp_path: Path, capsys, text: str,
                                             message: str) -> None:
@@ -293,6 +304,23 @@ def test_a_bad_config_file_is_a_usage_error(tmp_path: Path, capsys, text: str,
     config.write_text(text)
     assert main(["--config", str(config), "config", "fetch"]) == EXIT_USAGE
     assert message in capsys.readouterr().err
+
+
+def test_config_values_are_checked_only_for_the_command_run(tmp_path: Path) -> None:
+    # [fetch] port (a list) does not break serve's single --port; a fetch count does not
+    # break demo's share; the file never picks where train writes a model
+    config = tmp_path / "cascade.toml"
+    config.write_text('[fetch]\nport = [8080]\n[budget]\nbudget = "500"\n'
+                      '[output]\nmodel = "prod-model"\n')
+    from cascade.cli import _apply_config, load_settings
+
+    for command, dest, expected in (("serve", "port", 8787), ("plan", "budget", "500"),
+                                    ("train", "model", None)):
+        parser = build_parser()
+        later, _ = _apply_config(parser, load_settings(str(config)), command)
+        sub = next(a for a in parser._actions if a.dest == "command").choices[command]
+        default = next(a for a in sub._actions if a.dest == dest).default
+        assert default == expected, (command, dest, default)
 
 
 def test_a_resolve_wildcard_covers_every_name_below_its_parent() -> None:
@@ -379,8 +407,38 @@ def test_refine_resume_skips_the_urls_already_refined(cli_pages_dir: Path, tmp_p
                  "-o", str(out), "http://a.example/", "http://b.example/"])
     assert code in (EXIT_OK, EXIT_NO_FETCH)
     rows = [json.loads(line) for line in out.read_text().splitlines()]
-    assert [r["url"] for r in rows] == ["http://b.example/"]
+    # the earlier rows are copied first, then the rest: the new output is the whole result
+    assert [r["url"] for r in rows] == ["http://a.example/", "http://b.example/"]
     assert "1 URLs already refined" in capsys.readouterr().err
+
+
+def test_a_second_stop_never_replaces_the_rows_of_the_first(tmp_path: Path) -> None:
+    from cascade.io import open_writer
+
+    target = tmp_path / "out.jsonl"
+    partials = []
+    for rows in (3, 2):
+        try:
+            with open_writer(target) as out:
+                for i in range(rows):
+                    out.write({"url": f"http://h{i}.example/"})
+                raise KeyboardInterrupt
+        except KeyboardInterrupt as exc:
+            partials += [p for p, _ in exc.partial_outputs]
+    assert [Path(p).name for p in partials] == ["out.jsonl.partial", "out.jsonl.partial-2"]
+    assert len(Path(partials[0]).read_text().splitlines()) == 3
+
+
+def test_csv_output_from_json_lines_with_varying_fields_does_not_crash(model: Path,
+                                                                      tmp_path: Path,
+                                                                      capsys) -> None:
+    src = tmp_path / "in.jsonl"
+    src.write_text('{"url": "http://a.example/", "a": "1"}\n'
+                   '{"url": "http://b.example/", "b": "2"}\n')
+    out = tmp_path / "out.csv"
+    assert main(["score", "-m", str(model), "-i", str(src), "-o", str(out)]) == EXIT_OK
+    rows = list(csv.DictReader(out.open()))
+    assert [r["a"] for r in rows] == ["1", ""] and [r["b"] for r in rows] == ["", "2"]
 
 
 def test_a_report_from_a_url_only_model_is_refused(cli_model_dir: Path, tmp_path: Path,
@@ -390,3 +448,11 @@ def test_a_report_from_a_url_only_model_is_refused(cli_model_dir: Path, tmp_path
     assert code == EXIT_FILE
     assert "URL-only model" in capsys.readouterr().err
     assert not (tmp_path / "r" / "report.json").exists()
+
+
+def test_spans_never_cut_a_character_of_an_internationalized_host(url_model) -> None:
+    # RFC 3492 / IDNA: the model reads the Unicode host; a span is whole characters
+    exp = url_model.explain("http://b\u00fccher-\u00fcber.example.de/k\u00e4se", top=5,
+                            n_classes=2)
+    texts = [sp.text for cls in exp.classes for sp in cls.spans]
+    assert texts and not any("\ufffd" in t for t in texts)

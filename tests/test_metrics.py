@@ -511,3 +511,21 @@ _P = np.array([[0.7, 0.3], [0.2, 0.8], [0.5, 0.5]])
 def test_bad_input_raises_value_error(call, match: str) -> None:
     with pytest.raises(ValueError, match=match):
         call()
+
+
+def test_bootstrap_intervals_equal_resampling_the_rows_themselves() -> None:
+    # the count-per-row form must give what resampling the rows and recomputing the
+    # metrics with this module's own (sklearn-checked) functions gives, draw for draw
+    y, proba, _ = _case(3, n=400, k=4)
+    got = M.bootstrap_intervals(y, proba, n_boot=60, seed=0)
+    rng = np.random.default_rng(0)
+    pred = proba.argmax(axis=1)
+    draws = {"accuracy": [], "macro_f1": [], "ece_15": []}
+    for _ in range(60):
+        i = rng.integers(0, len(y), len(y))
+        draws["accuracy"].append(M.accuracy(y[i], pred[i]))
+        draws["macro_f1"].append(M.macro_f1(y[i], pred[i], 4))
+        draws["ece_15"].append(M.expected_calibration_error(y[i], proba[i], 15))
+    for name, values in draws.items():
+        assert got[name] == pytest.approx([np.percentile(values, 2.5),
+                                           np.percentile(values, 97.5)], abs=1e-9), name

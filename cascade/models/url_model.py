@@ -74,9 +74,9 @@ class UrlModel(CalibratedLinearClassifier):
     calibration_rows : folds stop once this many rows have been held out (None, the
         default: all folds). A speed knob for very large sets, not a free one: held-out
         folds of whole domains differ, so fewer folds give a noisier temperature
-        (measured on 1,000,000 demo URLs: 282 s instead of about 460 s with 100,000, but a
-        temperature of 2.05 from the one fold against 1.41 from all three). Folds given to
-        ``fit`` are always all used.
+        (measured on 1,000,000 demo URLs: with 100,000, one fold, 282 s and a temperature of
+        2.05; with all three folds, in another run on the same generator, 515 s and 1.61,
+        docs/url-model.md). Folds given to ``fit`` are always all used.
     n_jobs : threads for the solver's sparse products (scikit-learn's meaning; -1: all
         cores). The result does not depend on it.
     seed : fixes the hash salt and the calibration split; recorded in the model file.
@@ -239,22 +239,24 @@ class UrlModel(CalibratedLinearClassifier):
         # the two boundary marks belong to the first and last real characters
         per_byte[1] += per_byte[0]
         per_byte[-2] += per_byte[-1]
-        values = per_byte[1:-1]
-        host_bytes = len(f"{key.host_unicode}"
-                         f"{':' + str(key.port) if key.port is not None else ''}".encode(
-                             "utf-8", "surrogatepass"))
+        raw = np.frombuffer(text, dtype=np.uint8)
+        # characters, not bytes: a span never cuts a multi-byte character in two
+        char_of = np.cumsum((raw & 0xC0) != 0x80) - 1
+        chars = text.decode("utf-8", "surrogatepass")
+        values = np.bincount(char_of, weights=per_byte[1:-1], minlength=len(chars))
+        host_chars = len(f"{key.host_unicode}"
+                         f"{':' + str(key.port) if key.port is not None else ''}")
         floor = 0.02 * float(np.abs(values).max(initial=0.0))
         spans: list[Span] = []
         i = 0
         while i < len(values):
             sign = np.sign(values[i]) if abs(values[i]) > floor else 0.0
             j = i + 1
-            while j < len(values) and j != host_bytes and (
+            while j < len(values) and j != host_chars and (
                     np.sign(values[j]) if abs(values[j]) > floor else 0.0) == sign:
                 j += 1
             if sign != 0.0:
-                piece = text[i:j].decode("utf-8", "replace")
-                spans.append(Span(piece, "host" if i < host_bytes else "path",
+                spans.append(Span(chars[i:j], "host" if i < host_chars else "path",
                                   float(values[i:j].sum())))
             i = j
         spans.sort(key=lambda sp: -abs(sp.value))
