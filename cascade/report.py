@@ -546,7 +546,8 @@ def _html(rep: dict[str, Any], figs: list[tuple[str, str, str]]) -> str:
                  f"straight line from nothing to everything) is at {rep['knee_budget']:.0%}."
                  + ("" if suggestion is None else
                     f" To fetch about {rep['operating_budget']:.0%} of URLs by confidence "
-                    f"alone, use <code>--fetch-below {suggestion!r}</code>.") + "</p>")
+                    f"alone, use <code>--fetch-below {suggestion:.6g}</code> (report.json holds "
+                    "it unrounded).") + "</p>")
     parts.append("<h2>Budget needed for a share of the gain of fetching everything</h2>"
                  "<table><tr><th>strategy</th><th>90% of gain</th><th>95% of gain</th></tr>")
     for s in STRATEGIES:
