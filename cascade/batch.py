@@ -58,6 +58,10 @@ class NightOptions:
     # re-estimate the class mix of the night's URLs and adjust the URL model's
     # probabilities to it before planning (cascade.prior_shift; docs/night.md)
     prior_shift: bool = False
+    # the log's own name for its URL column (or JSON key) and its CSV separator
+    # (cascade.io.read_records); None: 'url', and the format's own separator
+    url_column: str | None = None
+    delimiter: str | None = None
 
 
 @dataclass
@@ -86,13 +90,15 @@ def _bad_kind(reason: str) -> str:
 
 def read_log(path: str | Path, stats: ReadStats, fmt: str | None = None,
              say: Callable[[str], None] | None = None,
-             progress: bool | None = None) -> dict[str, _LogEntry]:
+             progress: bool | None = None, url_column: str | None = None,
+             delimiter: str | None = None) -> dict[str, _LogEntry]:
     """Normalized URL -> its key and summed lookups, streaming the log; bad lines and bad
     URLs are counted in ``stats`` (samples kept) and skipped. ``progress`` as
     ``NightOptions.progress`` (None: a bar on a terminal only)."""
     entries: dict[str, _LogEntry] = {}
     bar = Progress(label="reading log", enabled=progress)
-    for rec in read_records(path, fmt=fmt, stats=stats):
+    columns = {"url": url_column} if url_column else None
+    for rec in read_records(path, fmt=fmt, stats=stats, columns=columns, delimiter=delimiter):
         try:
             key = normalize(rec.url)
         except InvalidURL as exc:
@@ -191,7 +197,8 @@ def _run_night(bundle: ModelBundle, store: VerdictStore, log: str | Path, out_di
         tell(f"run {run_id} is already done; writing its outputs again")
     started = time.perf_counter()
     stats = ReadStats()
-    entries = read_log(log, stats, fmt=log_format, say=tell, progress=opts.progress)
+    entries = read_log(log, stats, fmt=log_format, say=tell, progress=opts.progress,
+                       url_column=opts.url_column, delimiter=opts.delimiter)
     tell(f"log: {stats.lines} lines, {len(entries)} distinct URLs, {stats.bad} bad lines")
     queued = _add_queued(store, entries) if opts.use_refine_queue else []
     if queued:

@@ -710,7 +710,8 @@ def cmd_night(args: argparse.Namespace) -> int:
     policy, resolver = _fetch_setup(args)
     options = NightOptions(budget=_budget(args), fetch_below=args.fetch_below,
                            review_size=args.review_size, use_history=not args.no_history,
-                           prior_shift=args.prior_shift,
+                           prior_shift=args.prior_shift, url_column=args.url_column,
+                           delimiter=args.delimiter,
                            progress=False if args.quiet else None)
     client = None
     if args.engine == "dask" and args.dask_scheduler:
@@ -1131,6 +1132,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="the lookup log (plain, CSV/TSV, JSON Lines; .gz ok)")
     p.add_argument("--input-format", choices=["txt", "csv", "tsv", "jsonl"],
                    help="override the format guessed from the log's name or first line")
+    p.add_argument("--url-column", metavar="NAME",
+                   help="the log's column (or JSON key) holding the URL (default: url)")
+    p.add_argument("--delimiter", type=_delimiter, metavar="CHAR",
+                   help="the log's CSV column separator (default: ',' for CSV, tab for TSV)")
     p.add_argument("--model", "-m", required=True, help="model directory from 'train'")
     p.add_argument("--store", "-s", required=True, help="verdict store (a .sqlite file)")
     p.add_argument("--output", "-o", "--out", dest="out", required=True,

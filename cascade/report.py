@@ -298,6 +298,24 @@ def build_report(
                    for name, p in (("url_only", pu), ("cascade", at_op))}
     ece = {name: round(M.expected_calibration_error(y, p, 15, sample_weight=w), 4)
            for name, p in views.items()}
+    # the same 95% bootstrap for coverage and ECE (100 resamples: each sorts the rows)
+    rng = np.random.default_rng(1)
+    spread: dict[str, dict[str, list[float]]] = {name: {"coverage": [], "ece": []}
+                                                 for name in views}
+    for _ in range(100):
+        dw = np.bincount(rng.integers(0, n, n), minlength=n) * w
+        for name, p in views.items():
+            spread[name]["coverage"].append(
+                M.coverage_at_precision(y, p, precision_target, sample_weight=dw)[0])
+            spread[name]["ece"].append(M.expected_calibration_error(y, p, 15,
+                                                                    sample_weight=dw))
+    ece_95 = {}
+    for name in views:
+        lo_hi = {k: [round(float(np.percentile(v, 2.5)), 4),
+                     round(float(np.percentile(v, 97.5)), 4)]
+                 for k, v in spread[name].items()}
+        coverage[name]["coverage_95"] = lo_hi["coverage"]
+        ece_95[name] = lo_hi["ece"]
     return {
         "report": "cascade-budget", "cascade_version": __version__, "title": title,
         "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
@@ -320,7 +338,8 @@ def build_report(
         "random_seeds": seeds, "budget_table": table,
         "budget_for_gain_share": shares,
         "gain_of_fetching_all": {"accuracy": round(gain_all, 4)},
-        "coverage_at_precision": coverage, "ece_15": ece, "per_class": per_class,
+        "coverage_at_precision": coverage, "ece_15": ece, "ece_15_95": ece_95,
+        "per_class": per_class,
         "curves": {"budget": fine.tolist(), **curves},
         "risk_coverage": risk, "reliability": reliability,
         "roc": _roc_points(y, {"url_only": pu, "cascade": at_op}, classes, w),
@@ -561,11 +580,15 @@ def _html(rep: dict[str, Any], figs: list[tuple[str, str, str]]) -> str:
     parts.append(f"<h2>Coverage at precision {rep['precision_target']:.0%}</h2><table><tr>"
                  f"<th>verdicts</th><th>coverage of {unit}</th><th>confidence threshold</th>"
                  "<th>ECE (15 bins)</th></tr>")
+    def band(values: list[float] | None) -> str:
+        return "" if not values else f" <small>[{values[0]:.3f}, {values[1]:.3f}]</small>"
+
     for name, v in rep["coverage_at_precision"].items():
         thr = "-" if v["threshold"] is None else f"{v['threshold']:.4f}"
-        parts.append(f"<tr><td>{e(_label(rep, name))}</td><td>{v['coverage']:.4f}</td>"
-                     f"<td>{thr}</td>"
-                     f"<td>{rep['ece_15'][name]:.4f}</td></tr>")
+        parts.append(f"<tr><td>{e(_label(rep, name))}</td><td>{v['coverage']:.4f}"
+                     f"{band(v.get('coverage_95'))}</td><td>{thr}</td>"
+                     f"<td>{rep['ece_15'][name]:.4f}"
+                     f"{band(rep.get('ece_15_95', {}).get(name))}</td></tr>")
     parts.append("</table>")
     tkey = f"tpr_at_fpr_{ROC_FPR:g}"
     parts.append(f"<h2>Per category</h2><table><tr><th>category</th><th>risk</th><th>rows</th>"

@@ -456,3 +456,15 @@ def test_spans_never_cut_a_character_of_an_internationalized_host(url_model) -> 
                             n_classes=2)
     texts = [sp.text for cls in exp.classes for sp in cls.spans]
     assert texts and not any("\ufffd" in t for t in texts)
+
+
+def test_night_reads_a_log_with_its_own_column_name_and_separator(model: Path,
+                                                                 tmp_path: Path) -> None:
+    log = tmp_path / "log.csv"
+    log.write_text("site;hits\nnews.harborgazette.test;3\nspinjackpot-odds.example;1\n")
+    code = main(["--quiet", "night", "--log", str(log), "-m", str(model), "--store",
+                 str(tmp_path / "v.sqlite"), "-o", str(tmp_path / "night"), "--budget", "0",
+                 "--url-column", "site", "--delimiter", ";"])
+    assert code == EXIT_OK
+    report = json.loads((tmp_path / "night" / "night-report.json").read_text())
+    assert report["decided"] == 2 and report["input"]["bad"] == 0

@@ -236,6 +236,11 @@ def test_budget_rows_come_in_operational_units_with_the_knee_marked(data) -> Non
     assert 0 < rep["suggested_fetch_below"] < 1
     assert set(rep["coverage_at_precision"]) == {"url_only", "planner_at_operating_budget",
                                                   "fetch_all"}
+    for name, cov in rep["coverage_at_precision"].items():  # every headline has its spread
+        lo, hi = cov["coverage_95"]
+        assert 0.0 <= lo <= hi <= 1.0
+        lo, hi = rep["ece_15_95"][name]
+        assert 0.0 <= lo <= hi <= 1.0
 
 
 def test_risk_levels_reach_the_per_category_rows_and_the_breakdown(data) -> None:
