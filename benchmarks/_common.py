@@ -42,6 +42,29 @@ def load_labelled_csv(name: str) -> tuple[list[str], list[str]]:
     return [r[column] for r in rows], [r["category"] for r in rows]
 
 
+def load_webkb_rows() -> tuple[list[dict], int] | None:
+    """The shared WebKB page rows whose URL cascade can use, and how many were not (e.g.
+    file:// URLs of the 1997 crawl); None when the data set is not here."""
+    import gzip
+
+    from cascade.urls import normalize
+
+    path = SHARED_DATA / "university-pages" / "pages.jsonl.gz"
+    if not path.exists():
+        return None
+    rows, skipped = [], 0
+    with gzip.open(path, "rt", encoding="utf-8") as fh:
+        for line in fh:
+            r = json.loads(line)
+            try:
+                normalize(r["url"])
+            except ValueError:
+                skipped += 1
+                continue
+            rows.append(r)
+    return rows, skipped
+
+
 def write_json(result: dict, path: str | None) -> None:
     text = json.dumps(result, indent=2, sort_keys=False)
     print(text)

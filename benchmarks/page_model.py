@@ -24,7 +24,7 @@ import numpy as np
 from sklearn.metrics import accuracy_score, f1_score
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import SHARED_DATA, machine, write_json  # noqa: E402
+from _common import SHARED_DATA, load_webkb_rows, machine, write_json  # noqa: E402
 
 from cascade.bundle import fit_bundle  # noqa: E402
 from cascade.extract import extract  # noqa: E402
@@ -97,19 +97,10 @@ def _save_arrays(path: Path, bundle, train_urls, test_urls, y, pu, pp, pf, words
 
 
 def webkb(folds: int, seed: int, arrays: Path | None = None) -> dict:
-    path = SHARED_DATA / "university-pages" / "pages.jsonl.gz"
-    if not path.exists():
-        return {"skipped": f"{path} not found"}
-    rows, skipped = [], 0
-    with gzip.open(path, "rt", encoding="utf-8") as fh:
-        for line in fh:
-            r = json.loads(line)
-            try:
-                normalize(r["url"])
-            except ValueError:
-                skipped += 1  # e.g. file:// URLs in the 1997 crawl
-                continue
-            rows.append(r)
+    loaded = load_webkb_rows()
+    if loaded is None:
+        return {"skipped": f"{SHARED_DATA / 'university-pages' / 'pages.jsonl.gz'} not found"}
+    rows, skipped = loaded
     t0 = time.perf_counter()
     pages = [extract(r["html"], url=r["url"]) for r in rows]
     extract_s = time.perf_counter() - t0

@@ -34,7 +34,6 @@ Prints one JSON object.
 from __future__ import annotations
 
 import argparse
-import gzip
 import json
 import sys
 import time
@@ -45,7 +44,7 @@ from scipy.optimize import minimize
 from sklearn.metrics import log_loss
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import SHARED_DATA, machine, write_json  # noqa: E402
+from _common import SHARED_DATA, load_webkb_rows, machine, write_json  # noqa: E402
 
 from cascade.metrics import expected_calibration_error  # noqa: E402
 from cascade.models.calibration import softmax  # noqa: E402
@@ -179,19 +178,10 @@ def _short(res: dict) -> dict:
 
 
 def webkb(seed: int, resample_rows: int) -> dict:
-    path = SHARED_DATA / "university-pages" / "pages.jsonl.gz"
-    if not path.exists():
-        return {"skipped": f"{path} not found"}
-    rows, skipped = [], 0
-    with gzip.open(path, "rt", encoding="utf-8") as fh:
-        for line in fh:
-            r = json.loads(line)
-            try:
-                normalize(r["url"])
-            except ValueError:
-                skipped += 1  # e.g. file:// URLs in the 1997 crawl
-                continue
-            rows.append({k: r[k] for k in ("url", "label", "university")})
+    loaded = load_webkb_rows()
+    if loaded is None:
+        return {"skipped": f"{SHARED_DATA / 'university-pages' / 'pages.jsonl.gz'} not found"}
+    rows, skipped = loaded
     out: dict = {"rows": len(rows), "rows_with_unusable_url": skipped, "held_out": {}}
     for held in ("cornell", "washington", "wisconsin"):
         tr = [r for r in rows if r["university"] != held]

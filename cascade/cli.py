@@ -130,15 +130,15 @@ def _input_records(args: argparse.Namespace, stats: ReadStats) -> Iterator[Input
             yield InputRecord(line_no=i, url=u)
         return
     source = args.input or "-"
-    if source == "-" and _stdin_is_terminal() and not args.quiet:
+    if source == "-" and _is_terminal(sys.stdin) and not args.quiet:
         _eprint(f"{args.command}: reading URLs from standard input, one per line; end with "
                 "Ctrl-D (or give URLs, or --input FILE)")
     yield from _read(args, source, stats)
 
 
-def _stdin_is_terminal() -> bool:
+def _is_terminal(stream: Any) -> bool:
     try:
-        return sys.stdin.isatty()
+        return bool(stream.isatty())
     except (AttributeError, ValueError):
         return False
 
@@ -260,7 +260,7 @@ def cmd_score(args: argparse.Namespace) -> int:
     stats = ReadStats()
     progress = Progress(label="scoring", enabled=None if not args.quiet else False)
     written = 0
-    if args.output == "-" and args.output_format is None and _stdout_is_terminal():
+    if args.output == "-" and args.output_format is None and _is_terminal(sys.stdout):
         return _score_table(args, bundle, stats)
     header: list[str] | None = None  # CSV: the columns, from the first chunk's rows
     dropped: dict[str, int] = {}
@@ -274,8 +274,9 @@ def cmd_score(args: argparse.Namespace) -> int:
             if csv_out:
                 if header is None:  # JSON Lines input may give rows different fields
                     header = list(dict.fromkeys(k for row in rows for k in row))
+                    header_set = set(header)
                 for i, row in enumerate(rows):
-                    for k in row.keys() - set(header):
+                    for k in row.keys() - header_set:
                         dropped[k] = dropped.get(k, 0) + 1
                     row = {k: row.get(k) for k in header}
                     row["top"] = json.dumps(row["top"])
@@ -289,13 +290,6 @@ def cmd_score(args: argparse.Namespace) -> int:
         _eprint(f"score: input fields first seen after the CSV header was written were left "
                 f"out: {dropped} (rows); --output-format jsonl keeps every field")
     return _finish({"scored": written, "model_version": bundle.version}, stats, args.quiet)
-
-
-def _stdout_is_terminal() -> bool:
-    try:
-        return sys.stdout.isatty()
-    except (AttributeError, ValueError):
-        return False
 
 
 def _score_table(args: argparse.Namespace, bundle: Any, stats: ReadStats) -> int:
@@ -799,8 +793,6 @@ def cmd_serve(args: argparse.Namespace) -> int:
 def cmd_demo(args: argparse.Namespace) -> int:
     from cascade.demo import run_demo
 
-    if not 0.0 <= args.budget <= 1.0:
-        raise UsageError(f"--budget must be a share of URLs between 0 and 1, not {args.budget}")
     result = run_demo(Path(args.out), seed=args.seed, n_sites=args.sites, quiet=args.quiet,
                       budget_fraction=args.budget)
     if not args.quiet:
@@ -870,6 +862,13 @@ def _delimiter(text: str) -> str:
         raise argparse.ArgumentTypeError(f"a delimiter is one character (or 'tab'), not "
                                          f"{text!r}")
     return value
+
+
+def _add_precision_target(p: argparse.ArgumentParser) -> None:
+    """One option, one default for ``evaluate`` and ``report``."""
+    p.add_argument("--precision-target", type=_unit_value, default=PRECISION_TARGET,
+                   help="precision at which the recall figure is read, per category "
+                        "(default %(default)s in 'evaluate' and 'report')")
 
 
 def _add_prior_shift(p: argparse.ArgumentParser, batch: str) -> None:
@@ -1034,9 +1033,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--pages", help="folder of saved pages named by the input's 'page' column: "
                                    "also evaluate the fused verdict, and flag categories "
                                    "that fusion makes worse")
-    p.add_argument("--precision-target", type=_unit_value, default=PRECISION_TARGET,
-                   help="precision at which the recall figure is read, per category "
-                        "(default %(default)s, as in 'report')")
+    _add_precision_target(p)
     p.set_defaults(func=cmd_evaluate)
 
     p = command("fetch", "Fetch pages through the sandboxed fetcher; one JSON result a URL.")
@@ -1097,9 +1094,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--operating-budget", type=_share_value, default=0.3,
                    help="share of URLs fetched for the 'after' figures: 30%% or 0.3 "
                         "(default 0.3)")
-    p.add_argument("--precision-target", type=_unit_value, default=PRECISION_TARGET,
-                   help="precision at which the recall figure is read, per category "
-                        "(default %(default)s, as in 'evaluate')")
+    _add_precision_target(p)
     p.add_argument("--seeds", type=_whole(1), default=5,
                    help="random-order repeats (default 5)")
     p.add_argument("--fetch-history",

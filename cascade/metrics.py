@@ -19,6 +19,7 @@ and its confidence is ``max(proba)``.
 from __future__ import annotations
 
 import math
+from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
 
@@ -37,6 +38,7 @@ __all__ = [
     "ReliabilityTable",
     "accuracy",
     "bootstrap_intervals",
+    "bootstrap_weights",
     "coverage_at_precision",
     "expected_calibration_error",
     "f1_per_class",
@@ -405,13 +407,21 @@ def _headline(
     return figures, aucs
 
 
+def bootstrap_weights(n: int, n_boot: int, seed: int) -> Iterator[np.ndarray]:
+    """``n_boot`` bootstrap resamples of ``n`` rows, each as a count per row (how often the
+    row was drawn, with replacement; seeded), so a resampled figure is a weighted sum over
+    the rows instead of a copy of them."""
+    rng = np.random.default_rng(seed)
+    for _ in range(n_boot):
+        yield np.bincount(rng.integers(0, n, n), minlength=n).astype(np.float64)
+
+
 def bootstrap_intervals(y: np.ndarray, p: np.ndarray, n_boot: int = 200,
                         seed: int = 0) -> dict[str, list[float | None]]:
     """95% percentile-bootstrap intervals (Efron and Tibshirani, *An Introduction to the
     Bootstrap*, 1993, ch. 13) of accuracy, macro-F1 and ECE (15 bins): rows resampled with
     replacement ``n_boot`` times, seeded. A resample is a count per row (how often it was
     drawn), so each one costs a few weighted sums over the rows, not a copy of them."""
-    rng = np.random.default_rng(seed)
     n, k = p.shape
     pred = p.argmax(axis=1)
     conf = p[np.arange(n), pred]
@@ -420,8 +430,7 @@ def bootstrap_intervals(y: np.ndarray, p: np.ndarray, n_boot: int = 200,
     bins = _bin_indices(conf, edges)
     cell = y * k + pred
     draws: dict[str, list[float]] = {"accuracy": [], "macro_f1": [], "ece_15": []}
-    for _ in range(n_boot):
-        w = np.bincount(rng.integers(0, n, n), minlength=n).astype(np.float64)
+    for w in bootstrap_weights(n, n_boot, seed):
         total = w.sum()
         draws["accuracy"].append(float(w @ right / total))
         cm = np.bincount(cell, weights=w, minlength=k * k).reshape(k, k)

@@ -236,10 +236,10 @@ def build_report(
             "expected_failures": round(float(fail), 1),
             "failure_rate": round(float(fail) / m, 4) if m else None}
         table.append(row)
-    rng = np.random.default_rng(0)
     draws = np.empty((200, len(table)))
-    for r in range(200):  # one resample at a time: memory stays a few vectors of n
-        dw = np.bincount(rng.integers(0, n, n), minlength=n) * w
+    # one resample at a time: memory stays a few vectors of n
+    for r, counts_r in enumerate(M.bootstrap_weights(n, 200, seed=0)):
+        dw = counts_r * w
         draws[r] = [(dw @ right) / dw.sum() for right in rights]
     for j, row in enumerate(table):
         row["planner"]["accuracy_95"] = [round(float(np.percentile(draws[:, j], 2.5)), 4),
@@ -299,11 +299,10 @@ def build_report(
     ece = {name: round(M.expected_calibration_error(y, p, 15, sample_weight=w), 4)
            for name, p in views.items()}
     # the same 95% bootstrap for coverage and ECE (100 resamples: each sorts the rows)
-    rng = np.random.default_rng(1)
     spread: dict[str, dict[str, list[float]]] = {name: {"coverage": [], "ece": []}
                                                  for name in views}
-    for _ in range(100):
-        dw = np.bincount(rng.integers(0, n, n), minlength=n) * w
+    for counts_r in M.bootstrap_weights(n, 100, seed=1):
+        dw = counts_r * w
         for name, p in views.items():
             spread[name]["coverage"].append(
                 M.coverage_at_precision(y, p, precision_target, sample_weight=dw)[0])
