@@ -86,13 +86,16 @@ def main() -> None:
     parser.add_argument("--ngrams", default="1-4,2-5,3-6")
     parser.add_argument("--C", default="2,5,20")
     parser.add_argument("--class-balance", default="0,0.5")
+    parser.add_argument("--min-count", default="2")
     parser.add_argument("--tol", type=float, default=1e-4)
     parser.add_argument("--seed", type=int, default=0)
     args = parser.parse_args()
     ngrams = [tuple(int(x) for x in g.split("-")) for g in args.ngrams.split(",")]
-    grid = [{"ngram_range": g, "C": float(c), "class_balance": float(cb), "tol": args.tol}
-            for g, c, cb in itertools.product(ngrams, args.C.split(","),
-                                              args.class_balance.split(","))]
+    grid = [{"ngram_range": g, "C": float(c), "class_balance": float(cb),
+             "min_count": int(mc), "tol": args.tol}
+            for g, c, cb, mc in itertools.product(ngrams, args.C.split(","),
+                                                  args.class_balance.split(","),
+                                                  args.min_count.split(","))]
     out = {"benchmark": "url-model-sweep", "machine": machine(), "folds": args.folds,
            "procedure": "grouped (registered domain) k-fold CV inside the 80% training side",
            "datasets": {}}

@@ -112,8 +112,8 @@ def token_hashes(
     another place is another feature. Returns ``(rows, hashes)`` as ``char_ngram_hashes``.
     (A handful of tokens per URL: a cached C hash per token beats numpy set-up here.)"""
     cache = _TOKEN_CACHE.setdefault(seed, {})
-    if len(cache) > 1 << 20:
-        cache.clear()  # bounded memory
+    if len(cache) > 1 << 18:
+        cache.clear()  # bounded memory (~250 bytes an entry)
     counts = [len(tokens) for tokens in token_lists]
     hashes = [cache.get(t) or _token_hash(cache, t, seed) for tokens in token_lists
               for t in tokens]

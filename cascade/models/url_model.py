@@ -35,6 +35,28 @@ _PLACES = {"host", "domain", "suffix", "path", "query"}
 _CHUNK = 65536  # URLs featurized at once
 
 
+def _stack(parts: list[sp.csr_matrix], width: int) -> sp.csr_matrix:
+    """Stack CSR row chunks, freeing each chunk once copied: the peak is the result plus
+    one chunk, where ``sp.vstack`` holds all chunks and the result at once (at a million
+    URLs, more than a gigabyte more)."""
+    nnz = sum(p.nnz for p in parts)
+    rows = sum(p.shape[0] for p in parts)
+    index = np.int32 if nnz < 2**31 else np.int64
+    data = np.empty(nnz, dtype=np.float32)
+    indices = np.empty(nnz, dtype=index)
+    indptr = np.zeros(rows + 1, dtype=index)
+    at = row = 0
+    for j in range(len(parts)):
+        part, parts[j] = parts[j], None
+        data[at:at + part.nnz] = part.data
+        indices[at:at + part.nnz] = part.indices
+        indptr[row + 1:row + part.shape[0] + 1] = part.indptr[1:] + at
+        at += part.nnz
+        row += part.shape[0]
+        del part
+    return sp.csr_matrix((data, indices, indptr), shape=(rows, width), copy=False)
+
+
 def as_keys(urls: Iterable[str | UrlKey]) -> list[UrlKey]:
     """Normalize each URL (``UrlKey`` passes through); raises ``InvalidURL`` on the first bad."""
     out = []
@@ -85,6 +107,7 @@ class UrlModel(CalibratedLinearClassifier):
     _model_kind = "url-model"
     _version_prefix = "url"
     _item_name = "URLs"
+    _fixed_design = True
     _param_rules: ClassVar[dict[str, Constraint]] = {
         **CalibratedLinearClassifier._param_rules,
         "ngram_range": Range(1, 12),
@@ -138,8 +161,8 @@ class UrlModel(CalibratedLinearClassifier):
         so a column holds its count scaled by the row's size (a long URL does not outvote a
         short one), and a score is one gather-and-sum per URL on the request path."""
         if len(keys) > _CHUNK:  # hash temporaries are ~40 bytes per n-gram: bound them
-            return sp.vstack([self._transform(keys[i:i + _CHUNK])
-                              for i in range(0, len(keys), _CHUNK)], format="csr")
+            return _stack([self._transform(keys[i:i + _CHUNK])
+                           for i in range(0, len(keys), _CHUNK)], self.n_features)
         rows, cols = self._hashes(keys)
         n = len(keys)
         per_row = np.bincount(rows, minlength=n)
