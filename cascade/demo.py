@@ -71,7 +71,7 @@ def run_demo(out: Path, seed: int = 0, n_sites: int = 2000, quiet: bool = False,
     pages = [extract(render_page(records[i].url, records[i].label, records[i].page_seed),
                      url=records[i].url) for i in train]
     _say(quiet, f"training on {len(train)} labelled URLs with their saved pages "
-               f"({DEMO_FOLDS} stacking folds; about a minute)")
+               f"({DEMO_FOLDS} stacking folds; about 30 s on two cores)")
     t0 = time.perf_counter()
     bundle = fit_bundle([keys[i] for i in train], [labels[i] for i in train], pages,
                         taxonomy=taxonomy, page_model=PageModel(**DEMO_PAGE_PARAMS),
