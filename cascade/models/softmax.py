@@ -264,7 +264,7 @@ def fit_softmax(
 ) -> tuple[np.ndarray, np.ndarray, dict]:
     """Return ``(W, b, info)``: weights (n_features, n_classes) float32, intercepts, and
     the optimizer's report (iterations, converged, why it stopped, final objective and
-    gradient). ``init`` warm-starts from full-width weights and intercepts (e.g. a refit
+    gradient). ``init`` warm-starts from weights over X's columns and intercepts (e.g. a refit
     of the same problem on more rows); ``progress`` is called after every iteration.
     ``rows`` (sorted indices; None: all) fits on those rows of ``X``, ``y`` and
     ``sample_weight`` without copying them (cheapest when they form few runs).
@@ -404,7 +404,6 @@ def _lbfgs(fg: Callable[[np.ndarray], tuple[float, np.ndarray]], x: np.ndarray,
     diagonally scaled L-BFGS of Nocedal and Wright, section 7.2) instead of ``gamma * I``:
     hashed n-gram columns differ in frequency by orders of magnitude, and without it the
     rare ones take hundreds of iterations to settle."""
-    inv_d = inv_diag
     f, g = fg(x)
     nfev = 1
     pairs: list[tuple[np.ndarray, np.ndarray, float]] = []  # (s, y, 1 / y.s)
@@ -416,11 +415,11 @@ def _lbfgs(fg: Callable[[np.ndarray], tuple[float, np.ndarray]], x: np.ndarray,
             stop = "max_iter reached before the gradient fell below tol"
             break
         it += 1
-        direction = _two_loop(g, pairs, inv_d)
+        direction = _two_loop(g, pairs, inv_diag)
         slope = float(np.dot(g, direction))
         if not slope < 0:  # not a descent direction (round-off): restart from the gradient
             pairs.clear()
-            direction = _two_loop(g, pairs, inv_d)
+            direction = _two_loop(g, pairs, inv_diag)
             slope = float(np.dot(g, direction))
         step = 1.0 if pairs else min(1.0, 1.0 / max(float(np.linalg.norm(direction)), 1e-12))
         x_new = g_new = None
