@@ -149,7 +149,7 @@ def _one_split(train_urls, train_labels, test_urls, test_labels, seed: int,
     oof = model.oof_logits_.astype(np.float64)
     seen = ~np.isnan(oof[:, 0])
     oof_logits = oof[seen]
-    oof_proba = softmax(oof_logits / model.temperature_)
+    oof_proba = model.proba_from_logits(oof_logits)
     y_oof = np.array([classes.index(v) for v in train_labels])[seen]
     theta = _fit_bias_correction(oof_logits, y_oof)
     priors = {"counts": training_priors(model), "implied": oof_proba.mean(axis=0)}

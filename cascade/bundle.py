@@ -32,7 +32,6 @@ from sklearn.base import clone
 from cascade.errors import ModelFileError
 from cascade.fetch_value import MIN_VALUE_ROWS, DomainHistory, FetchValueModel, confidence_gain
 from cascade.fuse import Fusion
-from cascade.models.calibration import softmax
 from cascade.models.explanation import Explanation
 from cascade.models.folds import group_folds
 from cascade.models.page_model import PageModel, as_pages
@@ -385,8 +384,8 @@ def fit_bundle(
     page_oof[page_rows] = pm.oof_logits_
     both = url_seen & ~np.isnan(page_oof[:, 0])
     rows = np.flatnonzero(both)
-    pu = softmax(url_oof[both] / um.temperature_)
-    pp = softmax(page_oof[both] / pm.temperature_)
+    pu = um.proba_from_logits(url_oof[both])
+    pp = pm.proba_from_logits(page_oof[both])
     page_of = {int(r): p for r, p in zip(page_rows, page_list, strict=True)}
     words = np.array([page_word_count(page_of[int(i)]) for i in rows])
     say(f"fusion on {int(both.sum())} out-of-fold rows")

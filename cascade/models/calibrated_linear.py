@@ -29,7 +29,7 @@ from sklearn.base import BaseEstimator, ClassifierMixin
 from sklearn.exceptions import ConvergenceWarning
 
 from cascade.errors import ModelFileError, NotFittedError, TaxonomyError
-from cascade.models.calibration import fit_temperature, softmax
+from cascade.models.calibration import TopLabelMap, fit_temperature, softmax
 from cascade.models.explanation import ClassExplanation, Contribution, Explanation
 from cascade.models.folds import group_folds
 from cascade.models.linear import compact_table, pack_rows, unpack_rows
@@ -46,9 +46,8 @@ ABSENT_CLASS_BIAS = -30.0
 
 class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator):
     """Base class; see the module docstring. Parameters common to every subclass:
-    ``n_features``, ``C``, ``tol``, ``max_iter``, ``min_count``, ``calibration_folds``,
-    ``calibration_rows``,
-    ``n_jobs``, ``seed``."""
+    ``n_features``, ``C``, ``tol``, ``max_iter``, ``min_count``, ``calibration``,
+    ``calibration_folds``, ``calibration_rows``, ``n_jobs``, ``seed``."""
 
     _param_rules: ClassVar[dict[str, Constraint]] = {
         "n_features": PowerOfTwo(16),
@@ -59,6 +58,7 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
                                                      and not isinstance(v, bool) and v != 0),
                         text="None or a non-zero whole number (-1: all cores)"),
         "min_count": Interval(1, None, integer=True),
+        "calibration": OneOf(("temperature", "top-label")),
         "calibration_folds": Interval(0, None, integer=True),
         "calibration_rows": OneOf(test=lambda v: v is None or (
             isinstance(v, int) and not isinstance(v, bool) and v >= 1),
@@ -239,6 +239,10 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
                                                           "seconds")})
         seen = ~np.isnan(oof[:, 0])
         temperature = fit_temperature(oof[seen], codes[seen]) if seen.any() else 1.0
+        top_map = None
+        if self.calibration == "top-label" and seen.any():
+            top_map = TopLabelMap.fit(softmax(oof[seen] / np.float32(temperature)),
+                                      codes[seen])
         unsorted = np.empty_like(oof)
         unsorted[order] = oof
         oof = unsorted
@@ -267,6 +271,7 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
         self.weights_ = np.ascontiguousarray(W)
         self.intercept_ = b
         self.temperature_ = temperature
+        self.top_label_map_ = top_map
         self.oof_logits_ = oof
         self.optimizer_ = info
         grouping = "given folds" if folds is not None else (
@@ -274,8 +279,9 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
                                    self._group_name()))
         self.training_ = {
             "n_rows": n,
-            "calibration": f"temperature fitted on out-of-fold logits, {used_folds} "
-                           f"{grouping}" if used_folds else "none (temperature 1)",
+            "calibration": (f"temperature fitted on out-of-fold logits, {used_folds} "
+                            f"{grouping}" + (", then a top-label map" if top_map else "")
+                            if used_folds else "none (temperature 1)"),
             "data_sha256": digest,
             "class_counts": {c: int((codes == i).sum()) for i, c in enumerate(classes)},
             "seconds": round(time.perf_counter() - started, 3),
@@ -309,7 +315,20 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
 
     def predict_proba(self, X: Any) -> np.ndarray:
         """Calibrated class probabilities, shape (n, n_classes), columns in ``classes_``."""
-        return softmax(self.decision_function(X))
+        return self._calibrated(softmax(self.decision_function(X)))
+
+    def proba_from_logits(self, logits: np.ndarray) -> np.ndarray:
+        """Calibrated probabilities from raw logits (``X @ W + b``, before the temperature,
+        as in ``oof_logits_``): what ``predict_proba`` gives for those rows. ``fit_bundle``
+        reads the out-of-fold logits through it, so the fusion learns on what it will see."""
+        self._check_fitted()
+        z = np.asarray(logits, dtype=np.float64) / self.temperature_
+        return self._calibrated(softmax(z))
+
+    def _calibrated(self, proba: np.ndarray) -> np.ndarray:
+        """The top-label map over temperature-scaled probabilities (in place), if fitted."""
+        top_map = getattr(self, "top_label_map_", None)
+        return proba if top_map is None else top_map.apply(proba)
 
     def predict(self, X: Any) -> list[str]:
         """The most probable category of each item."""
@@ -334,7 +353,7 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
             self.temperature_
         bias = self.intercept_ / self.temperature_
         logits = per_feature.sum(axis=0) + bias
-        proba = softmax(logits[None, :])[0]
+        proba = self._calibrated(softmax(logits[None, :]))[0]
         out, rest = [], []
         for c in self._chosen_classes(proba, classes, n_classes):
             order = np.argsort(-np.abs(per_feature[:, c]), kind="stable")
@@ -352,10 +371,14 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
 
     # ------------------------------------------------------------ files
     def _file_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        top_map = getattr(self, "top_label_map_", None)
+        method = "temperature" if top_map is None else "temperature+top-label"
         meta = {"classes": list(self.classes_), "taxonomy": self.taxonomy_.to_dict(),
-                "calibration": {"method": "temperature", "temperature": self.temperature_},
+                "calibration": {"method": method, "temperature": self.temperature_},
                 "training": self.training_}
         arrays = {**pack_rows(self.weights_), "intercept": self.intercept_.astype(np.float64)}
+        if top_map is not None:
+            arrays.update(top_label_x=top_map.xs, top_label_y=top_map.ys)
         return meta, arrays
 
     def _restore_state(self, meta: dict[str, Any], arrays: dict[str, np.ndarray],
@@ -373,6 +396,19 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
         self.temperature_ = float(meta["calibration"]["temperature"])
         if not self.temperature_ > 0:
             raise ModelFileError(f"{where}: temperature must be positive")
+        method = meta["calibration"].get("method", "temperature")
+        if method == "temperature":  # fitted without a map (or with too few rows for one)
+            self.top_label_map_ = None
+        elif method == "temperature+top-label":
+            if "top_label_x" not in arrays or "top_label_y" not in arrays:
+                raise ModelFileError(f"{where}: the calibration says top-label but "
+                                     "weights.npz has no top-label knots")
+            try:
+                self.top_label_map_ = TopLabelMap(arrays["top_label_x"], arrays["top_label_y"])
+            except ValueError as exc:
+                raise ModelFileError(f"{where}: {exc}") from None
+        else:
+            raise ModelFileError(f"{where}: unknown calibration method {method!r}")
 
 
 class _FitMeter:

@@ -73,6 +73,7 @@ class PageModel(CalibratedLinearClassifier):
     short_page_words : pages with fewer words also get character n-grams (0: never).
     field_weights : weight of each field's normalized vector (keys from ``FIELDS``).
     C, tol, max_iter, min_count, n_jobs : as for the URL model's logistic regression.
+    calibration : ``"temperature"`` (default) or ``"top-label"`` (as for the URL model).
     calibration_folds : temperature fitted on out-of-fold logits, grouped by ``groups``.
     calibration_rows : as for the URL model: folds stop once this many rows are held out.
     seed : hash key and fold shuffle; recorded in the model file.
@@ -99,6 +100,7 @@ class PageModel(CalibratedLinearClassifier):
         tol: float = 3e-4,
         max_iter: int = 2000,
         min_count: int = 2,
+        calibration: str = "temperature",
         calibration_folds: int = 3,
         calibration_rows: int | None = None,
         n_jobs: int | None = -1,
@@ -112,6 +114,7 @@ class PageModel(CalibratedLinearClassifier):
         self.tol = tol
         self.max_iter = max_iter
         self.min_count = min_count
+        self.calibration = calibration
         self.calibration_folds = calibration_folds
         self.calibration_rows = calibration_rows
         self.n_jobs = n_jobs
