@@ -92,8 +92,8 @@ class UrlModel(CalibratedLinearClassifier):
     calibration : ``"top-label"`` (default): after the temperature, a monotone map of the
         winning class's probability fitted on the same out-of-fold rows (``TopLabelMap``;
         never changes the winner). Measured on the three benchmark sets' held-out sides,
-        ECE 0.0785 -> 0.037 on the demo scenario, 0.0146 -> 0.010 on open-directory hosts,
-        0.0366 -> 0.042 on domain-categories (docs/url-model.md). ``"temperature"``: the
+        ECE 0.0785 -> 0.0487 on the demo scenario, 0.0146 -> 0.0108 on open-directory
+        hosts, 0.0366 -> 0.0393 on domain-categories (docs/url-model.md). ``"temperature"``: the
         temperature alone.
     calibration_folds : the temperature is fitted on out-of-fold logits from this many fits,
         each leaving out a share of the registered domains (so it is measured on domains
