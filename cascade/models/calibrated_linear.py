@@ -327,7 +327,7 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
 
     def _calibrated(self, proba: np.ndarray) -> np.ndarray:
         """The top-label map over temperature-scaled probabilities (in place), if fitted."""
-        top_map = getattr(self, "top_label_map_", None)
+        top_map = self.top_label_map_
         return proba if top_map is None else top_map.apply(proba)
 
     def predict(self, X: Any) -> list[str]:
@@ -371,7 +371,7 @@ class CalibratedLinearClassifier(ModelFileMixin, ClassifierMixin, BaseEstimator)
 
     # ------------------------------------------------------------ files
     def _file_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-        top_map = getattr(self, "top_label_map_", None)
+        top_map = self.top_label_map_
         method = "temperature" if top_map is None else "temperature+top-label"
         meta = {"classes": list(self.classes_), "taxonomy": self.taxonomy_.to_dict(),
                 "calibration": {"method": method, "temperature": self.temperature_},

@@ -9,8 +9,6 @@ without changing the winner.
 
 from __future__ import annotations
 
-from bisect import bisect_right
-
 import numpy as np
 from scipy.optimize import minimize_scalar
 
@@ -74,8 +72,6 @@ class TopLabelMap:
                 not (np.all((self.ys >= 0) & (self.ys <= 1))
                      and np.all(np.isfinite(self.xs))):
             raise ValueError("top-label map knots must be finite, sorted, and in [0, 1]")
-        self._x_list = self.xs.tolist()
-        self._y_list = self.ys.tolist()
 
     @classmethod
     def fit(cls, proba: np.ndarray, y: np.ndarray) -> TopLabelMap | None:
@@ -112,22 +108,13 @@ class TopLabelMap:
         return proba
 
     def apply_one(self, proba: np.ndarray) -> np.ndarray:
-        """``apply`` for one row (the request path: no numpy set-up per call)."""
+        """``apply`` for one row, in place (the request path: scalars, no per-row arrays)."""
         top = int(proba.argmax())
         conf = float(proba[top])
         rest = 1.0 - conf
         if rest <= 1e-12:
             return proba
-        xs, ys = self._x_list, self._y_list
-        i = bisect_right(xs, conf)
-        if i == 0:
-            new = ys[0]
-        elif i == len(xs):
-            new = ys[-1]
-        else:
-            x0, x1 = xs[i - 1], xs[i]
-            new = ys[i - 1] + (ys[i] - ys[i - 1]) * ((conf - x0) / (x1 - x0)
-                                                     if x1 > x0 else 0.0)
+        new = float(np.interp(conf, self.xs, self.ys))  # ~1 us for a scalar
         proba[top] = -1.0
         second = float(proba.max())
         new = min(1.0, max(new, second / (rest + second) * (1 + 1e-9)))
